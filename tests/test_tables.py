@@ -1,0 +1,380 @@
+"""Tests for vesselgeom.tables: schemas, typed construction, deterministic CSV and columns.json.
+
+Independent references used below: Python's ``csv`` module (an RFC 4180 reader that shares no code
+with pandas' C parser), Python's ``format(x, ".9g")`` (C99 ``%g`` semantics) for the expected
+9-significant-digit text, pandas' own dtype objects for the expected dtypes, and ``json`` from the
+standard library.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from vesselgeom.errors import InputError
+from vesselgeom.tables import (
+    BRANCH_COLUMNS,
+    JUNCTION_COLUMNS,
+    POINT_COLUMNS,
+    TABLE_SCHEMAS,
+    Column,
+    columns_document,
+    make_table,
+    read_csv,
+    write_csv,
+)
+
+# A schema exercising the two dtypes the three tables do not use much (bool, text ids).
+EXTRA_COLUMNS = (
+    Column("label", "string", "", "Text id such as '01'; never missing."),
+    Column("ok", "bool", "1", "Whether the row passed; never missing."),
+    Column("count", "Int64", "1", "Nullable count; empty when unknown."),
+    Column("value_mm", "float64", "mm", "A length; empty when not defined."),
+)
+ALL_SCHEMAS = {**TABLE_SCHEMAS, "extra.csv": EXTRA_COLUMNS}
+
+TEXT_POOL = [
+    "",
+    "01",
+    "007",
+    "short;fit_failed",
+    "3-7:74.9;3-12:142.0",
+    "a,b",
+    'say "hi"',
+    "naïve µm",
+    "two\nlines",
+]
+
+
+def _random_data(schema, n, seed):
+    """Column dict with values of every kind the dtype allows, including missing ones."""
+    rng = np.random.default_rng(seed)
+    data = {}
+    for column in schema:
+        if column.dtype == "int64":
+            data[column.name] = rng.integers(-(10**12), 10**12, n)
+        elif column.dtype == "Int64":
+            values = rng.integers(0, 10**6, n).tolist()
+            data[column.name] = [None if rng.random() < 0.3 else v for v in values]
+        elif column.dtype == "float64":
+            values = rng.normal(size=n) * 10.0 ** rng.integers(-12, 12, n)
+            values[rng.random(n) < 0.2] = np.nan
+            if n >= 3:
+                values[:3] = [1.0 / 3.0, -0.0, 2.0**-30]
+            data[column.name] = values
+        elif column.dtype == "string":
+            data[column.name] = [TEXT_POOL[i] for i in rng.integers(0, len(TEXT_POOL), n)]
+        else:
+            data[column.name] = rng.random(n) < 0.5
+    return data
+
+
+def _expected_dtype(column):
+    # pandas' own dtype objects are the reference for what each schema dtype string means.
+    return pd.Series([], dtype=column.dtype).dtype
+
+
+@pytest.mark.parametrize("name", sorted(ALL_SCHEMAS))
+@pytest.mark.parametrize("data", [None, {}, "empty-lists"])
+def test_zero_row_tables_are_typed(name, data):
+    # STYLE.md point 4, after scikit-image regionprops_table: no rows still gives typed columns.
+    schema = ALL_SCHEMAS[name]
+    if data == "empty-lists":
+        data = {c.name: [] for c in schema}
+    table = make_table(schema, data)
+    assert table.shape == (0, len(schema))
+    assert list(table.columns) == [c.name for c in schema]
+    for column in schema:
+        assert table[column.name].dtype == _expected_dtype(column), column.name
+
+
+@pytest.mark.parametrize("name", sorted(ALL_SCHEMAS))
+def test_zero_row_csv_is_header_only_and_reads_back_typed(tmp_path, name):
+    schema = ALL_SCHEMAS[name]
+    path = tmp_path / name
+    write_csv(make_table(schema), path, schema=schema)
+    # Python's csv module as independent reader: exactly one row, the header in schema order.
+    rows = list(csv.reader(io.StringIO(path.read_text(encoding="utf-8"))))
+    assert rows == [[c.name for c in schema]]
+    back = read_csv(path, schema)
+    assert back.shape == (0, len(schema))
+    assert [back[c.name].dtype for c in schema] == [_expected_dtype(c) for c in schema]
+
+
+@pytest.mark.parametrize("name", sorted(ALL_SCHEMAS))
+def test_round_trip_keeps_dtypes_and_values_to_nine_digits(tmp_path, name):
+    schema = ALL_SCHEMAS[name]
+    data = _random_data(schema, 60, seed=7)
+    path = tmp_path / name
+    write_csv(make_table(schema, data), path, schema=schema)
+    back = read_csv(path, schema)
+    assert list(back.columns) == [c.name for c in schema]
+    for column in schema:
+        got = back[column.name]
+        assert got.dtype == _expected_dtype(column), column.name
+        if column.dtype == "float64":
+            # Python format spec ".9g" (C99 %g semantics): the value must come back as exactly
+            # the double nearest to its 9-significant-digit decimal text.
+            want = [np.nan if np.isnan(v) else float(format(v, ".9g")) for v in data[column.name]]
+            np.testing.assert_array_equal(got.to_numpy(), np.array(want))
+        elif column.dtype == "Int64":
+            want = pd.array(data[column.name], dtype="Int64")
+            pd.testing.assert_extension_array_equal(got.array, want)
+        else:
+            # Text (including "", "01", quotes, commas, newlines), ints and bools come back exactly.
+            assert got.tolist() == list(data[column.name]), column.name
+
+
+def test_text_ids_and_empty_flags_stay_text(tmp_path):
+    data = _random_data(BRANCH_COLUMNS, 2, seed=1)
+    data["flags"] = ["", "01"]
+    path = tmp_path / "branches.csv"
+    write_csv(make_table(BRANCH_COLUMNS, data), path)
+    back = read_csv(path, BRANCH_COLUMNS)
+    assert back["flags"].tolist() == ["", "01"]
+    assert not back["flags"].isna().any()
+
+
+@pytest.mark.parametrize("name", sorted(ALL_SCHEMAS))
+def test_writes_are_byte_identical(tmp_path, name):
+    schema = ALL_SCHEMAS[name]
+    data = _random_data(schema, 40, seed=3)
+    first, second, third = (tmp_path / f"{k}.csv" for k in "abc")
+    write_csv(make_table(schema, data), first, schema=schema)
+    # Same content given with the keys in reverse order must give the same bytes.
+    reversed_data = dict(reversed(list(data.items())))
+    write_csv(make_table(schema, reversed_data), second, schema=schema)
+    # Text read back and written again is a fixed point of the format.
+    write_csv(read_csv(first, schema), third, schema=schema)
+    raw = first.read_bytes()
+    assert raw == second.read_bytes() == third.read_bytes()
+    assert b"\r" not in raw.replace(b"two\nlines", b"")
+    assert raw.endswith(b"\n")
+    raw.decode("utf-8")
+
+
+def test_nan_and_missing_ints_are_empty_fields(tmp_path):
+    data = _random_data(BRANCH_COLUMNS, 2, seed=5)
+    data["chord_mm"] = [np.nan, 2.0]
+    data["distance_metric"] = [None, 1.0 / 3.0]
+    data["start_node"] = [None, 4]
+    path = tmp_path / "branches.csv"
+    write_csv(make_table(BRANCH_COLUMNS, data), path)
+    # Python's csv module as independent reader.
+    rows = list(csv.DictReader(io.StringIO(path.read_text(encoding="utf-8"))))
+    assert [r["chord_mm"] for r in rows] == ["", "2"]
+    assert [r["start_node"] for r in rows] == ["", "4"]
+    # C99 printf %.9g of 1/3 has nine significant digits.
+    assert [r["distance_metric"] for r in rows] == ["", "0.333333333"]
+    assert list(rows[0]) == [c.name for c in BRANCH_COLUMNS]
+
+
+def test_write_csv_puts_columns_in_schema_order(tmp_path):
+    data = _random_data(JUNCTION_COLUMNS, 3, seed=2)
+    shuffled = pd.DataFrame(make_table(JUNCTION_COLUMNS, data).iloc[:, ::-1])
+    path = tmp_path / "junctions.csv"
+    write_csv(shuffled, path)  # schema found from the column names
+    header = next(csv.reader(io.StringIO(path.read_text(encoding="utf-8"))))
+    assert header == [c.name for c in JUNCTION_COLUMNS]
+
+
+def test_read_csv_accepts_columns_in_any_order(tmp_path):
+    names = [c.name for c in EXTRA_COLUMNS][::-1]
+    path = tmp_path / "extra.csv"
+    with open(path, "w", encoding="utf-8", newline="") as handle:
+        writer = csv.writer(handle, lineterminator="\n")
+        writer.writerow(names)
+        writer.writerow(["2.5", "", "True", "01"])
+    back = read_csv(path, EXTRA_COLUMNS)
+    assert list(back.columns) == [c.name for c in EXTRA_COLUMNS]
+    assert back.loc[0, "label"] == "01"
+    assert back["ok"].dtype == np.dtype(bool) and back["ok"].tolist() == [True]
+    assert back["count"].isna().all()
+    assert back.loc[0, "value_mm"] == 2.5
+
+
+def test_missing_and_extra_columns_raise_naming_them(tmp_path):
+    data = _random_data(BRANCH_COLUMNS, 2, seed=4)
+    del data["chord_mm"]
+    data["bogus"] = [1, 2]
+    with pytest.raises(InputError, match=r"chord_mm.*bogus"):
+        make_table(BRANCH_COLUMNS, data)
+    assert issubclass(InputError, ValueError)
+    with pytest.raises(ValueError, match="bogus"):
+        write_csv(pd.DataFrame(data), tmp_path / "b.csv", schema=BRANCH_COLUMNS)
+    with pytest.raises(InputError, match="pass schema="):
+        write_csv(pd.DataFrame(data), tmp_path / "b.csv")
+    assert not (tmp_path / "b.csv").exists()
+    path = tmp_path / "points.csv"
+    path.write_text("branch_id,arc_mm\n1,0.5\n", encoding="utf-8")
+    with pytest.raises(InputError, match=r"points\.csv.*missing columns.*x_mm"):
+        read_csv(path, POINT_COLUMNS)
+
+
+@pytest.mark.parametrize(
+    ("column", "values", "message"),
+    [
+        ("arc_mm", ["1.0", "2.0"], "string values"),
+        ("branch_id", [1, 2.5], "non-integer"),
+        ("branch_id", [1, np.nan], "missing"),
+        ("branch_id", [True, False], "boolean"),
+        ("x_mm", [1.0], "differ in length"),
+        ("y_mm", np.zeros((2, 3)), "not 1-D"),
+    ],
+)
+def test_values_that_do_not_fit_raise(column, values, message):
+    data = _random_data(POINT_COLUMNS, 2, seed=6)
+    data[column] = values
+    with pytest.raises(InputError, match=message):
+        make_table(POINT_COLUMNS, data)
+
+
+@pytest.mark.parametrize(("values", "message"), [([1, 2], "integer values"), ([None, ""], "''")])
+def test_text_columns_reject_numbers_and_missing(values, message):
+    data = _random_data(JUNCTION_COLUMNS, 2, seed=8)
+    data["branch_ids"] = values
+    with pytest.raises(InputError, match=message):
+        make_table(JUNCTION_COLUMNS, data)
+
+
+def test_read_csv_errors_name_the_file(tmp_path):
+    with pytest.raises(InputError, match=r"nope\.csv: no such file"):
+        read_csv(tmp_path / "nope.csv", EXTRA_COLUMNS)
+    path = tmp_path / "bad.csv"
+    path.write_text("label,ok,count,value_mm\n01,True,abc,1\n", encoding="utf-8")
+    with pytest.raises(InputError, match=r"bad\.csv: a field does not fit"):
+        read_csv(path, EXTRA_COLUMNS)
+    (tmp_path / "empty.csv").write_bytes(b"")
+    with pytest.raises(InputError, match=r"empty\.csv: file is empty"):
+        read_csv(tmp_path / "empty.csv", EXTRA_COLUMNS)
+
+
+def test_write_is_atomic_and_leaves_no_temporary_file(tmp_path, monkeypatch):
+    schema = EXTRA_COLUMNS
+    path = tmp_path / "extra.csv"
+    write_csv(make_table(schema, _random_data(schema, 5, seed=9)), path, schema=schema)
+    before = path.read_bytes()
+    # A table that fails validation never touches the existing file.
+    with pytest.raises(InputError):
+        write_csv(pd.DataFrame({"label": ["x"]}), path, schema=schema)
+
+    # A failure at the final rename leaves the old file intact and removes the temporary file.
+    def failing_replace(src, dst):
+        raise PermissionError(13, "Permission denied")
+
+    monkeypatch.setattr(os, "replace", failing_replace)
+    with pytest.raises(InputError, match=r"extra\.csv: cannot write"):
+        write_csv(make_table(schema, _random_data(schema, 5, seed=10)), path, schema=schema)
+    monkeypatch.undo()
+    assert path.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["extra.csv"]
+
+
+def test_written_file_permissions_follow_umask(tmp_path):
+    # POSIX open(2): a new file gets mode 0o666 & ~umask, as any ordinary write would give.
+    umask = os.umask(0o022)
+    try:
+        path = tmp_path / "points.csv"
+        write_csv(make_table(POINT_COLUMNS), path)
+        assert path.stat().st_mode & 0o777 == 0o644
+    finally:
+        os.umask(umask)
+
+
+def test_spec_names_and_dtypes():
+    # The tables brief fixes names, order and these dtypes (nullable node ids, counts, text lists).
+    dtypes = {c.name: c.dtype for c in BRANCH_COLUMNS}
+    assert dtypes["start_node"] == dtypes["end_node"] == "Int64"
+    assert dtypes["kind"] == dtypes["flags"] == "string"
+    assert dtypes["inflection_count"] == dtypes["n_points"] == dtypes["branch_id"] == "int64"
+    junction = {c.name: c.dtype for c in JUNCTION_COLUMNS}
+    assert junction["branch_ids"] == junction["angles_deg"] == "string"
+    assert junction["degree"] == "int64"
+    assert [c.name for c in BRANCH_COLUMNS] == (
+        "branch_id component_id kind start_node end_node length_mm chord_mm distance_metric "
+        "inflection_count inflection_count_metric sum_of_angles_per_mm mean_curvature_per_mm "
+        "max_curvature_per_mm total_curvature_rad mean_torsion_per_mm mean_abs_torsion_per_mm "
+        "total_abs_torsion_rad torsion_defined_fraction mean_radius_mm min_radius_mm "
+        "max_radius_mm start_x_mm start_y_mm start_z_mm end_x_mm end_y_mm end_z_mm step_mm "
+        "n_points flags"
+    ).split()
+    assert [c.name for c in POINT_COLUMNS] == (
+        "branch_id arc_mm x_mm y_mm z_mm curvature_per_mm torsion_per_mm radius_mm "
+        "tangent_x tangent_y tangent_z"
+    ).split()
+    assert [c.name for c in JUNCTION_COLUMNS] == (
+        "node_id component_id x_mm y_mm z_mm degree branch_ids radius_mm min_angle_deg "
+        "max_angle_deg angles_deg"
+    ).split()
+
+
+IDENTIFIERS = {
+    "branch_id",
+    "component_id",
+    "node_id",
+    "start_node",
+    "end_node",
+    "kind",
+    "flags",
+    "branch_ids",
+}
+
+
+@pytest.mark.parametrize("name", sorted(TABLE_SCHEMAS))
+def test_every_column_has_unit_and_description(name):
+    # Convention (SI brochure, 9th ed., 5.4.7): '1' for dimensionless numbers; '' only for
+    # identifiers and text labels, which are not quantities.
+    for column in TABLE_SCHEMAS[name]:
+        text = column.description
+        assert len(text) > 40 and text.strip() == text, column.name
+        assert "empty" in text.lower() or "missing" in text.lower(), column.name
+        if column.name in IDENTIFIERS:
+            assert column.unit == "", column.name
+            continue
+        assert column.unit in {"mm", "1/mm", "rad", "rad/mm", "deg", "1"}, column.name
+        if column.name.endswith("_per_mm"):
+            assert column.unit in {"1/mm", "rad/mm"}, column.name
+        elif column.name.endswith("_mm"):
+            assert column.unit == "mm" and column.dtype == "float64", column.name
+        elif column.name.endswith("_rad"):
+            assert column.unit == "rad", column.name
+        elif column.name.endswith("_deg"):
+            assert column.unit == "deg", column.name
+        else:
+            assert column.unit == "1", column.name
+
+
+def test_column_rejects_unknown_dtype_and_empty_description():
+    with pytest.raises(InputError, match="float32"):
+        Column("a_mm", "float32", "mm", "A length.")
+    with pytest.raises(InputError, match="no description"):
+        Column("a_mm", "float64", "mm", "  ")
+    with pytest.raises(InputError, match="repeats"):
+        make_table((EXTRA_COLUMNS[0], EXTRA_COLUMNS[0]))
+
+
+def test_columns_document_is_json_and_complete():
+    document = columns_document(TABLE_SCHEMAS)
+    # The standard library json module is the reference for "JSON-serialisable".
+    assert json.loads(json.dumps(document)) == document
+    assert list(document["tables"]) == ["branches.csv", "points.csv", "junctions.csv"]
+    for file_name, schema in TABLE_SCHEMAS.items():
+        entries = document["tables"][file_name]
+        assert [e["name"] for e in entries] == [c.name for c in schema]
+        assert all(set(e) == {"name", "unit", "dtype", "description"} for e in entries)
+    conventions = document["conventions"]
+    # Frenet-Serret sign convention (do Carmo 1976): dB/ds = -tau N, right-handed helix tau > 0.
+    assert "dB/ds = -tau N" in conventions["frame"]
+    assert "B = T x N" in conventions["frame"]
+    assert "right-handed helix has positive torsion" in conventions["frame"]
+    assert "affine" in conventions["coordinates"] and "mm" in conventions["coordinates"]
+    assert "degrees" in conventions["angles"]
+    assert "empty field" in conventions["missing"].lower()
+    with pytest.raises(InputError):
+        columns_document({"bad.csv": ("not a column",)})

@@ -1,0 +1,278 @@
+"""The single-mask pipeline: load, prepare, thin, build and prune the graph, trace, measure, tabulate.
+
+Data flows one way (see ``ARCHITECTURE.md``); this module only orders the stages, carries the settings and
+records provenance. It never reads a file format itself: that is :mod:`vesselgeom.io`.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .centerline import BranchInput, trace_centerlines
+from .crosssection import CrossSection
+from .errors import VesselgeomWarning
+from .graph import build_graph, prune_spurs
+from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
+from .io.affine import voxel_sizes
+from .measure import BranchContext, branch_row, junction_row, point_columns
+from .radius import BoundaryDistance
+from .settings import Settings
+from .skeleton import iter_components, thin
+from .tables import (
+    BRANCH_COLUMNS,
+    JUNCTION_COLUMNS,
+    POINT_COLUMNS,
+    columns_document,
+    make_table,
+    write_csv,
+)
+
+__all__ = ["Result", "analyze", "analyze_volume", "CAUTION"]
+
+CAUTION = (
+    "Research use only. Not a medical device; not for diagnosis or treatment decisions. "
+    "Defer to qualified clinicians and local regulations."
+)
+
+
+@dataclass
+class Result:
+    """Tables and provenance of one analysed mask.
+
+    Attributes
+    ----------
+    branches, points, junctions : DataFrame
+        The three tables (columns and units in ``columns.json``, see :mod:`vesselgeom.tables`).
+    run : dict
+        Provenance: version, settings, input hash, voxel size, units, orientation, timings, warnings.
+    """
+
+    branches: pd.DataFrame
+    points: pd.DataFrame
+    junctions: pd.DataFrame
+    run: dict[str, Any] = field(default_factory=dict)
+
+    def write(self, out_dir: str | os.PathLike[str]) -> Path:
+        """Write the tables, ``columns.json`` and ``run.json`` into ``out_dir``, atomically.
+
+        The folder appears complete or not at all: files are written into a temporary sibling folder
+        that replaces ``out_dir`` at the end.
+        """
+        out = Path(out_dir)
+        with atomic_output_dir(out) as tmp:
+            write_csv(self.branches, tmp / "branches.csv", schema=BRANCH_COLUMNS)
+            write_csv(self.points, tmp / "points.csv", schema=POINT_COLUMNS)
+            write_csv(self.junctions, tmp / "junctions.csv", schema=JUNCTION_COLUMNS)
+            doc = columns_document(
+                {
+                    "branches.csv": BRANCH_COLUMNS,
+                    "points.csv": POINT_COLUMNS,
+                    "junctions.csv": JUNCTION_COLUMNS,
+                }
+            )
+            (tmp / "columns.json").write_text(json.dumps(doc, indent=2) + "\n")
+            (tmp / "run.json").write_text(json.dumps(self.run, indent=2, default=_json) + "\n")
+        return out
+
+
+def _json(obj: Any) -> Any:
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    raise TypeError(type(obj).__name__)
+
+
+def analyze(
+    source: str | os.PathLike[str] | np.ndarray,
+    *,
+    settings: Settings | None = None,
+    affine: np.ndarray | None = None,
+    spacing: float | tuple[float, float, float] | None = None,
+    **overrides: Any,
+) -> Result:
+    """Measure the centreline geometry of every branch in a 3D vessel mask.
+
+    Parameters
+    ----------
+    source : path or 3D array
+        A NIfTI file (``.nii``/``.nii.gz``) or an array (bool, integer labels or float probabilities).
+    settings : Settings, optional
+        All tunables; defaults documented in :class:`vesselgeom.Settings`.
+    affine : (4, 4) array, mm, optional
+        For arrays: index -> world affine. Not with ``spacing``.
+    spacing : float or 3 floats, mm, optional
+        For arrays: voxel size along the index axes (axis-aligned grid).
+    **overrides
+        Settings fields to change, e.g. ``threshold=0.5`` or ``label=2``.
+
+    Returns
+    -------
+    Result
+
+    Examples
+    --------
+    >>> from vesselgeom.phantoms import helix, tube_phantom
+    >>> ph = tube_phantom(helix(turns=1), 2.0)
+    >>> res = analyze(ph.mask, affine=ph.affine)
+    >>> len(res.branches), res.branches.loc[0, "kind"]
+    (1, 'isolated')
+    """
+    settings = (settings or Settings()).replace(**overrides) if overrides else settings or Settings()
+    t0 = time.perf_counter()
+    if isinstance(source, np.ndarray):
+        volume = volume_from_array(
+            source, affine=affine, spacing=spacing, label=settings.label, threshold=settings.threshold
+        )
+    else:
+        if affine is not None or spacing is not None:
+            raise ValueError("affine/spacing are only for arrays; a file carries its own affine")
+        volume = load_nifti(source, label=settings.label, threshold=settings.threshold)
+    return analyze_volume(volume, settings=settings, load_seconds=time.perf_counter() - t0)
+
+
+def analyze_volume(
+    volume: Volume, *, settings: Settings | None = None, load_seconds: float = 0.0
+) -> Result:
+    """Run the pipeline on a loaded :class:`~vesselgeom.io.Volume`."""
+    settings = settings or Settings()
+    timings = {"load": load_seconds, "components": 0.0, "thin": 0.0, "graph": 0.0, "trace": 0.0,
+               "measure": 0.0}
+    notes: list[str] = list(volume.warnings)
+    spacing = voxel_sizes(volume.affine)
+    voxel_mm = float(np.mean(spacing))
+    min_voxels = (settings.min_component_mm3 / volume.voxel_volume_mm3
+                  if settings.min_component_mm3 is not None else settings.min_component_voxels)
+    branch_rows: list[dict] = []
+    point_parts: list[dict[str, np.ndarray]] = []
+    junction_rows: list[dict] = []
+    next_branch, next_node = 1, 1
+
+    t = time.perf_counter()
+    components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
+    for comp in components:
+        timings["components"] += time.perf_counter() - t
+        aff = volume.affine.copy()
+        aff[:3, 3] = volume.affine[:3, :3] @ comp.offset + volume.affine[:3, 3]
+
+        t = time.perf_counter()
+        skel = thin(comp.mask)
+        timings["thin"] += time.perf_counter() - t
+        if skel.sum() < 2:
+            notes.append(f"component {comp.component_id} thinned to a single voxel; no branch measured")
+            t = time.perf_counter()
+            continue
+
+        t = time.perf_counter()
+        boundary = BoundaryDistance(comp.mask, aff)
+        graph = build_graph(skel)
+        graph = prune_spurs(graph, linear=aff[:3, :3], radius_at=boundary.at_index,
+                            ratio=settings.prune_ratio)
+        timings["graph"] += time.perf_counter() - t
+
+        t = time.perf_counter()
+        section = CrossSection(comp.mask, aff)
+        inputs, contexts = [], []
+        node_ids = {nid: next_node + i for i, nid in enumerate(sorted(graph.nodes))}
+        next_node += len(node_ids)
+        for b in graph.branches:
+            world = b.path @ aff[:3, :3].T + aff[:3, 3]
+            ends = [graph.nodes[n].kind if n is not None else None for n in (b.start, b.end)]
+            free = [k == "end" for k in ends]
+            if b.closed or (b.start is not None and b.start == b.end):
+                kind = "loop"
+            elif all(free):
+                kind = "isolated"
+            elif any(free):
+                kind = "terminal"
+            else:
+                kind = "internal"
+            flags = ("touches_image_edge",) if comp.touches_border else ()
+            inputs.append(BranchInput(world, b.closed, free[0], free[1]))
+            contexts.append(BranchContext(
+                next_branch, comp.component_id, kind,
+                node_ids.get(b.start), node_ids.get(b.end), flags,
+            ))
+            next_branch += 1
+        lines = trace_centerlines(inputs, section=section, boundary=boundary, voxel_mm=voxel_mm,
+                                  settings=settings)
+        timings["trace"] += time.perf_counter() - t
+
+        t = time.perf_counter()
+        for cl, ctx in zip(lines, contexts, strict=True):
+            branch_rows.append(branch_row(cl, ctx, settings=settings, voxel_mm=voxel_mm))
+            if cl is not None:
+                point_parts.append(point_columns(cl, ctx.branch_id))
+        for nid in sorted(graph.nodes):
+            node = graph.nodes[nid]
+            if node.kind != "junction":
+                continue
+            pos = node.position @ aff[:3, :3].T + aff[:3, 3]
+            ends = []
+            for cl, ctx, b in zip(lines, contexts, graph.branches, strict=True):
+                if b.start == nid:
+                    ends.append((ctx.branch_id, cl, True))
+                if b.end == nid:
+                    ends.append((ctx.branch_id, cl, False))
+            junction_rows.append(junction_row(
+                node_ids[nid], comp.component_id, pos, float(boundary(pos[None])[0]), ends,
+                settings=settings,
+            ))
+        timings["measure"] += time.perf_counter() - t
+        t = time.perf_counter()
+
+    for msg in notes[len(volume.warnings):]:
+        warnings.warn(f"{volume.source}: {msg}", VesselgeomWarning, stacklevel=2)
+    branches = make_table(BRANCH_COLUMNS, _columns(branch_rows, BRANCH_COLUMNS))
+    points = make_table(POINT_COLUMNS, _concat(point_parts, POINT_COLUMNS))
+    junctions = make_table(JUNCTION_COLUMNS, _columns(junction_rows, JUNCTION_COLUMNS))
+    run = {
+        "software": "vesselgeom",
+        "version": __version__,
+        "caution": CAUTION,
+        "input": {
+            "source": volume.source,
+            "sha256": volume.sha256,
+            "shape": list(volume.shape),
+            "dtype": volume.dtype_in,
+            "units_in_file": volume.input_units,
+            "voxel_size_mm": [float(v) for v in spacing],
+            "orientation": volume.orientation,
+            "affine": volume.affine.tolist(),
+            "foreground_voxels": int(volume.mask.sum()),
+        },
+        "settings": settings.to_dict(),
+        "derived": {
+            "step_mm": settings.step_mm or settings.step_voxels * voxel_mm,
+            "curvature_floor_per_mm": settings.curvature_floor_per_voxel / voxel_mm,
+            "min_component_voxels": float(min_voxels),
+        },
+        "counts": {"branches": len(branches), "junctions": len(junctions), "points": len(points)},
+        "timings_seconds": {k: round(v, 3) for k, v in timings.items()},
+        "warnings": notes,
+        "environment": {"python": platform.python_version(), "numpy": np.__version__},
+    }
+    return Result(branches, points, junctions, run)
+
+
+def _columns(rows: list[dict], schema) -> dict[str, list] | None:
+    if not rows:
+        return None
+    return {c.name: [r[c.name] for r in rows] for c in schema}
+
+
+def _concat(parts: list[dict[str, np.ndarray]], schema) -> dict[str, np.ndarray] | None:
+    if not parts:
+        return None
+    return {c.name: np.concatenate([p[c.name] for p in parts]) for c in schema}

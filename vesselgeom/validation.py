@@ -1,0 +1,130 @@
+"""Accuracy of the pipeline on voxelised analytic phantoms, as a table of errors per case.
+
+Used by the tests, by ``docs/make_validation.py`` (which writes ``docs/validation.md``) and by users who
+want the expected error at their own voxel size and vessel radius. Every error is measured against the
+phantom's analytic truth (:mod:`vesselgeom.phantoms`), whose own numbers are checked against closed forms
+in ``tests/test_phantoms.py``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from . import phantoms as P
+from .pipeline import analyze
+from .settings import Settings
+
+__all__ = ["Case", "standard_cases", "run_case", "run_cases", "SINUSOID_WAVELENGTH_RADII", "curve_for"]
+
+SINUSOID_WAVELENGTH_RADII = 20.0
+
+
+@dataclass(frozen=True)
+class Case:
+    """One phantom configuration: curve class, tube radius in voxels, voxel spacing, affine seed."""
+
+    curve: str
+    radius_voxels: float
+    spacing: tuple[float, float, float]
+    seed: int
+    flip: bool = False
+    permute: bool = False
+
+    @property
+    def anisotropy(self) -> float:
+        return max(self.spacing) / min(self.spacing)
+
+    @property
+    def radius_mm(self) -> float:
+        # "radius >= N voxels along every axis": measured in the coarsest voxel dimension
+        return self.radius_voxels * max(self.spacing)
+
+
+def curve_for(name: str, radius_mm: float) -> P.Curve:
+    """The analytic curve of a phantom class, scaled to the tube radius.
+
+    Shapes are fixed relative to the tube radius r, so that the radius in voxels alone sets the
+    resolution: helix a = 5r, b = 1.5r (two turns; kappa r = 0.18, tau r = 0.055); sinusoid with
+    wavelength 20r and k = 2 pi A / lambda = 1 (three periods; the METHODS.md check value
+    L / lambda = 1.2160067; smallest radius of curvature 3.2r); ring R = 6r; straight 20r.
+    """
+    r = radius_mm
+    lam = SINUSOID_WAVELENGTH_RADII * r
+    return {
+        "helix_right": lambda: P.helix(5 * r, 1.5 * r, turns=2),
+        "helix_left": lambda: P.helix(5 * r, 1.5 * r, turns=2, right_handed=False),
+        "sinusoid": lambda: P.sinusoid(lam / (2 * np.pi), lam, periods=3),
+        "ring": lambda: P.ring(6 * r),
+        "straight": lambda: P.straight(20 * r),
+    }[name]()
+
+
+def standard_cases(
+    *,
+    curves: Sequence[str] = ("helix_right", "helix_left", "sinusoid", "ring", "straight"),
+    radii_voxels: Sequence[float] = (2.0, 3.0),
+    spacings: Sequence[tuple[float, float, float]] = ((1.0, 1.0, 1.0), (0.5, 0.5, 1.0)),
+    seeds: Iterable[int] = (0, 1),
+) -> list[Case]:
+    """The validation grid: every curve x radius x spacing x affine, alternating flips and permutations."""
+    cases = []
+    for c in curves:
+        for r in radii_voxels:
+            for sp in spacings:
+                for s in seeds:
+                    cases.append(Case(c, r, tuple(sp), s, flip=s % 2 == 1, permute=s % 3 == 2))
+    return cases
+
+
+def run_case(case: Case, *, settings: Settings | None = None) -> dict:
+    """Analyse one phantom and return its errors against the truth (relative unless named _abs)."""
+    curve = curve_for(case.curve, case.radius_mm)
+    rot = P.random_rotation(case.seed, flip=case.flip, permute=case.permute)
+    ph = P.tube_phantom(curve, case.radius_mm, spacing=case.spacing, rotation=rot)
+    res = analyze(ph.mask, affine=ph.affine, settings=settings)
+    truth = ph.branches[0]
+    b = res.branches
+    row = {
+        "curve": case.curve,
+        "radius_voxels": case.radius_voxels,
+        "spacing": "x".join(f"{v:g}" for v in case.spacing),
+        "anisotropy": case.anisotropy,
+        "seed": case.seed,
+        "flip": case.flip,
+        "n_branches": len(b),
+        "n_junctions": len(res.junctions),
+    }
+    if len(b) != 1:
+        return row
+    m = b.iloc[0]
+
+    def rel(est: float, true: float) -> float:
+        return float(est / true - 1.0) if true != 0 else float("nan")
+
+    row.update(
+        kind=m["kind"],
+        curvature_err=rel(m["mean_curvature_per_mm"], truth.mean_curvature_per_mm),
+        curvature_abs_per_mm=float(m["mean_curvature_per_mm"]),
+        torsion_err=rel(m["mean_torsion_per_mm"], truth.mean_torsion_per_mm),
+        torsion_abs_per_mm=float(m["mean_torsion_per_mm"]),
+        length_err_mm=float(m["length_mm"] - truth.length_mm),
+        length_err_radii=float((m["length_mm"] - truth.length_mm) / case.radius_mm),
+        length_err=rel(m["length_mm"], truth.length_mm),
+        dm_err=rel(m["distance_metric"], truth.distance_metric),
+        dm=float(m["distance_metric"]),
+        inflections=int(m["inflection_count"]),
+        inflections_true=int(truth.inflection_count),
+        radius_err_voxels=float((m["mean_radius_mm"] - case.radius_mm) / max(case.spacing)),
+        true_curvature_per_mm=truth.mean_curvature_per_mm,
+        true_torsion_per_mm=truth.mean_torsion_per_mm,
+    )
+    return row
+
+
+def run_cases(cases: Iterable[Case], *, settings: Settings | None = None) -> pd.DataFrame:
+    """:func:`run_case` over many cases, one row each."""
+    return pd.DataFrame([run_case(c, settings=settings) for c in cases])
