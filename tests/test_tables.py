@@ -306,7 +306,7 @@ def test_spec_names_and_dtypes():
     ).split()
     assert [c.name for c in POINT_COLUMNS] == (
         "branch_id arc_mm x_mm y_mm z_mm curvature_per_mm torsion_per_mm radius_mm "
-        "tangent_x tangent_y tangent_z"
+        "tangent_x tangent_y tangent_z in_summary"
     ).split()
     assert [c.name for c in JUNCTION_COLUMNS] == (
         "node_id component_id x_mm y_mm z_mm degree branch_ids radius_mm min_angle_deg "
@@ -323,6 +323,7 @@ IDENTIFIERS = {
     "kind",
     "flags",
     "branch_ids",
+    "in_summary",
 }
 
 

@@ -185,17 +185,16 @@ def trace_centerlines(
     for b in branches:
         r = boundary(b.path)
         core = r[1:-1] if len(r) > 4 else r
-        scale = max(float(np.nanmedian(core)) if core.size else 0.0,
-                    settings.min_scale_voxels * voxel_mm)
+        scale = max(float(np.nanmedian(core)) if core.size else 0.0, settings.min_scale_voxels * voxel_mm)
         scales.append(scale)
-        fits.append(fit_curve(b.path, knot_spacing=settings.knot_spacing_radii * scale,
-                              closed=b.closed))
+        fits.append(fit_curve(b.path, knot_spacing=settings.knot_spacing_radii * scale, closed=b.closed))
 
     for _ in range(settings.recentre_passes):
         us = [(_even_samples(f, voxel_mm) if f is not None else np.zeros(0)) for f in fits]
         centres = [f(u) if f is not None else np.zeros((0, 3)) for f, u in zip(fits, us, strict=True)]
-        tangents = [_unit(f(u, 1)) if f is not None else np.zeros((0, 3))
-                    for f, u in zip(fits, us, strict=True)]
+        tangents = [
+            _unit(f(u, 1)) if f is not None else np.zeros((0, 3)) for f, u in zip(fits, us, strict=True)
+        ]
         allc = np.concatenate(centres)
         if not len(allc):
             break
@@ -206,8 +205,14 @@ def trace_centerlines(
         for i, new in enumerate(np.split(moved, splits)):
             if fits[i] is None:
                 continue
-            fits[i] = fit_curve(new, knot_spacing=settings.knot_spacing_radii * scales[i],
-                                closed=branches[i].closed) or fits[i]
+            fits[i] = (
+                fit_curve(
+                    new,
+                    knot_spacing=settings.knot_spacing_radii * scales[i],
+                    closed=branches[i].closed,
+                )
+                or fits[i]
+            )
 
     out: list[Centerline | None] = []
     for b, fit, scale in zip(branches, fits, scales, strict=True):
@@ -230,6 +235,5 @@ def trace_centerlines(
             if not measured.any():  # a branch shorter than its trims: keep its middle sample
                 measured[len(arc) // 2] = True
         step_used = float(arc[1] - arc[0]) if len(arc) > 1 else 0.0
-        out.append(Centerline(arc, r, frame, radius, measured, b.closed, step_used, scale,
-                              fit.degree, ext))
+        out.append(Centerline(arc, r, frame, radius, measured, b.closed, step_used, scale, fit.degree, ext))
     return out

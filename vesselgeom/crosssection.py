@@ -56,7 +56,12 @@ class CrossSection:
         return vals.reshape(pts.shape[:-1])
 
     def centroids(
-        self, centres: np.ndarray, tangents: np.ndarray, disc_radii: np.ndarray, *, chunk: int = 4096
+        self,
+        centres: np.ndarray,
+        tangents: np.ndarray,
+        disc_radii: np.ndarray,
+        *,
+        chunk: int = 4096,
     ) -> tuple[np.ndarray, np.ndarray]:
         """Cross-section centroids and equivalent-area radii.
 

@@ -41,9 +41,7 @@ def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", a, b)
 
 
-def frenet_frame(
-    d1: np.ndarray, d2: np.ndarray, d3: np.ndarray, *, curvature_floor: float = 0.0
-) -> Frame:
+def frenet_frame(d1: np.ndarray, d2: np.ndarray, d3: np.ndarray, *, curvature_floor: float = 0.0) -> Frame:
     """Frenet-Serret frame, curvature and torsion from the first three derivatives.
 
     Parameters

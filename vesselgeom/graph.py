@@ -19,13 +19,16 @@ from scipy.sparse.csgraph import connected_components
 __all__ = ["Node", "Branch", "SkeletonGraph", "build_graph", "prune_spurs"]
 
 # the 13 offsets with a positive first non-zero entry: each 26-neighbour pair is seen once
-_HALF_OFFSETS = np.array(
-    [
-        o
-        for o in np.ndindex(3, 3, 3)
-        if (np.array(o) - 1).tolist() > [0, 0, 0]  # lexicographic "positive" half
-    ]
-) - 1
+_HALF_OFFSETS = (
+    np.array(
+        [
+            o
+            for o in np.ndindex(3, 3, 3)
+            if (np.array(o) - 1).tolist() > [0, 0, 0]  # lexicographic "positive" half
+        ]
+    )
+    - 1
+)
 
 
 @dataclass
@@ -214,14 +217,15 @@ def build_graph(skeleton: np.ndarray) -> SkeletonGraph:
             graph.branches.append(Branch(path, None, None, closed=True))
             continue
         ends: list[int | None] = []
-        for v, other in ((int(seq[0]), int(seq[-1])), (int(seq[-1]), int(seq[0]))):
-            if v in node_of_end:
+        single = len(seq) == 1
+        for v in (int(seq[0]), int(seq[-1])):
+            if v in node_of_end and not (single and ends):
                 ends.append(node_of_end[v])
                 continue
-            js = jn_of.get(v, [])
-            if v == other and len(ends) == 1 and len(js) > 1:
-                js = [j for j in js if node_of_junc[j] != ends[0]] or js
-            ends.append(node_of_junc[js[0]] if js else None)
+            js = [node_of_junc[j] for j in jn_of.get(v, [])]
+            if single and ends:  # a one-voxel chain: its other side is a different node
+                js = [j for j in js if j != ends[0]] or js
+            ends.append(js[0] if js else None)
         start, end = ends
         pieces = [path]
         if start is not None and graph.nodes[start].kind == "junction":
@@ -288,8 +292,10 @@ def prune_spurs(
             b = graph.branches[i]
             j = b.start if graph.nodes[b.start].kind == "junction" else b.end
             by_junction.setdefault(j, []).append(i)
-        ends_of = {j: degree[j] - sum(2 if graph.branches[i].start == graph.branches[i].end else 1
-                                      for i in idx) for j, idx in by_junction.items()}
+        ends_of = {
+            j: degree[j] - sum(2 if graph.branches[i].start == graph.branches[i].end else 1 for i in idx)
+            for j, idx in by_junction.items()
+        }
         drop = set()
         for j, idx in by_junction.items():
             if ends_of[j] <= 0:

@@ -2,7 +2,8 @@
 
 Summaries of curvature, torsion and radius are taken over the *measured* stretch of each branch: the
 centreline less about one radius at both ends (junctions distort the centreline there, and splines are
-least constrained at their ends) and less the extrapolated part of terminal ends. Length, chord and the tortuosity indices use the whole centreline.
+least constrained at their ends) and less the extrapolated part of terminal ends. Length, chord and the
+tortuosity indices use the whole centreline.
 """
 
 from __future__ import annotations
@@ -38,7 +39,12 @@ def _stats(values: np.ndarray) -> tuple[float, float, float]:
 
 
 def branch_row(
-    cl: Centerline | None, ctx: BranchContext, *, settings: Settings, voxel_mm: float
+    cl: Centerline | None,
+    ctx: BranchContext,
+    *,
+    settings: Settings,
+    voxel_mm: float,
+    coarsest_voxel_mm: float | None = None,
 ) -> dict:
     """One row of branches.csv for a traced centreline (NaN measures and a flag when tracing failed)."""
     row: dict = {
@@ -62,8 +68,13 @@ def branch_row(
     chord = nan if cl.closed else float(np.linalg.norm(cl.points[-1] - cl.points[0]))
     dm = distance_metric(length, chord)
     inflections = count_inflections(
-        arc, k, cl.frame.normal, floor=floor, dip=settings.inflection_dip,
-        end_exclusion_mm=settings.inflection_end_radii * cl.scale_mm, closed=cl.closed,
+        arc,
+        k,
+        cl.frame.binormal,
+        floor=floor,
+        dip=settings.inflection_dip,
+        end_exclusion_mm=settings.inflection_end_radii * cl.scale_mm,
+        closed=cl.closed,
         measured=m,
     )
     am, km = arc[m], k[m]
@@ -77,16 +88,21 @@ def branch_row(
     defined = m & np.isfinite(tau)
     tau_d = tau[defined]
     abs_tau = np.where(defined, np.abs(np.nan_to_num(tau)), 0.0)
-    total_abs_t = integrate(abs_tau[m], am) if not cl.closed else integrate(
-        np.r_[abs_tau, abs_tau[:1]], np.r_[arc, length]
-    )
+    if cl.closed:
+        total_abs_t = integrate(np.r_[abs_tau, abs_tau[:1]], np.r_[arc, length])
+    else:
+        total_abs_t = integrate(abs_tau[m], am)
+    defined_len = measured_len * float(defined.sum() / m.sum())
     r_mean, r_min, r_max = _stats(cl.radius[m])
+    last = 0 if cl.closed else -1  # a loop ends where it starts
     if cl.degree < 5:
         flags.append("few_points")
     if measured_len < settings.knot_spacing_radii * cl.scale_mm:
         flags.append("short")
     if tau_d.size == 0:
         flags.append("torsion_undefined")
+    if np.isfinite(r_mean) and r_mean < 2.0 * (coarsest_voxel_mm or voxel_mm):
+        flags.append("radius_below_2_voxels")  # below the validated resolution (docs/validation.md)
     row.update(
         length_mm=length,
         chord_mm=chord,
@@ -98,8 +114,8 @@ def branch_row(
         max_curvature_per_mm=float(km.max()),
         total_curvature_rad=total_k,
         mean_torsion_per_mm=float(np.median(tau_d)) if tau_d.size else nan,
-        mean_abs_torsion_per_mm=float(np.median(np.abs(tau_d))) if tau_d.size else nan,
-        total_abs_torsion_rad=total_abs_t,
+        mean_abs_torsion_per_mm=total_abs_t / defined_len if tau_d.size and defined_len > 0 else nan,
+        total_abs_torsion_rad=total_abs_t if tau_d.size else nan,
         torsion_defined_fraction=float(defined.sum() / m.sum()),
         mean_radius_mm=r_mean,
         min_radius_mm=r_min,
@@ -107,9 +123,9 @@ def branch_row(
         start_x_mm=float(cl.points[0, 0]),
         start_y_mm=float(cl.points[0, 1]),
         start_z_mm=float(cl.points[0, 2]),
-        end_x_mm=float(cl.points[-1, 0]),
-        end_y_mm=float(cl.points[-1, 1]),
-        end_z_mm=float(cl.points[-1, 2]),
+        end_x_mm=float(cl.points[last, 0]),
+        end_y_mm=float(cl.points[last, 1]),
+        end_z_mm=float(cl.points[last, 2]),
         step_mm=cl.step_mm,
         n_points=len(arc),
         flags=";".join(flags),
@@ -140,6 +156,7 @@ def point_columns(cl: Centerline, branch_id: int) -> dict[str, np.ndarray]:
         "tangent_x": t[:, 0],
         "tangent_y": t[:, 1],
         "tangent_z": t[:, 2],
+        "in_summary": cl.measured,
     }
 
 

@@ -36,9 +36,7 @@ def distance_metric(length_mm: float, chord_mm: float) -> float:
     return float(length_mm / chord_mm)
 
 
-def sum_of_angles(
-    points: np.ndarray, *, closed: bool = False, straight: np.ndarray | None = None
-) -> float:
+def sum_of_angles(points: np.ndarray, *, closed: bool = False, straight: np.ndarray | None = None) -> float:
     """Sum of angles metric (Bullitt et al. 2003): total in-plane and torsional turning per unit length.
 
     On consecutive points P_{k-1}, P_k, P_{k+1}, P_{k+2} with T1 = P_k - P_{k-1}, T2 = P_{k+1} - P_k,
@@ -67,8 +65,10 @@ def sum_of_angles(
     if len(p) < 4:
         return float("nan")
     seg = np.diff(p, axis=0)
-    length = float(np.linalg.norm(seg, axis=1).sum()) if not closed else float(
-        np.linalg.norm(seg[: len(points)], axis=1).sum()
+    length = (
+        float(np.linalg.norm(seg, axis=1).sum())
+        if not closed
+        else float(np.linalg.norm(seg[: len(points)], axis=1).sum())
     )
     t1, t2, t3 = seg[:-2], seg[1:-1], seg[2:]
     u1 = t1 / np.linalg.norm(t1, axis=1, keepdims=True)
@@ -94,7 +94,7 @@ def sum_of_angles(
 def count_inflections(
     arc: np.ndarray,
     curvature: np.ndarray,
-    normal: np.ndarray,
+    binormal: np.ndarray,
     *,
     floor: float,
     dip: float = 0.5,
@@ -116,8 +116,8 @@ def count_inflections(
     ----------
     arc : (n,) float array, mm
     curvature : (n,) float array, 1/mm
-    normal : (n, 3) float array
-        Principal normals (NaN allowed where curvature is below the floor).
+    binormal : (n, 3) float array
+        Binormals B = T x N (NaN allowed where curvature is below the floor).
     floor : float, 1/mm
         Curvature noise floor: peaks must exceed it.
     dip : float
@@ -149,7 +149,7 @@ def count_inflections(
     if closed:
         pairs.append((peaks[-1], peaks[0] + len(k)))
     kk = np.tile(k, 2) if closed else k
-    nn = np.concatenate([normal, normal]) if closed else normal
+    nn = np.concatenate([binormal, binormal]) if closed else binormal
     if measured is not None and measured.any():
         first, last = arc[measured][0], arc[measured][-1]
     else:

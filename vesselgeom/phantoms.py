@@ -161,9 +161,7 @@ def ring(radius: float = 12.0) -> Curve:
     )
 
 
-def straight(
-    length: float = 40.0, *, start: Sequence[float] = (0, 0, 0), direction=(1, 0, 0)
-) -> Curve:
+def straight(length: float = 40.0, *, start: Sequence[float] = (0, 0, 0), direction=(1, 0, 0)) -> Curve:
     """Straight segment from ``start`` along ``direction``: curvature 0, distance metric 1."""
     p0 = np.asarray(start, float)
     u = np.asarray(direction, float)
@@ -253,7 +251,7 @@ def random_rotation(seed: int, *, flip: bool = False, permute: bool = False) -> 
     m = Rotation.random(random_state=rng).as_matrix()
     if permute:
         m = m[:, rng.permutation(3)]
-    if flip:
+    if (np.linalg.det(m) < 0) != flip:  # an odd permutation is itself improper
         m = m @ np.diag([1.0, 1.0, -1.0])
     return m
 

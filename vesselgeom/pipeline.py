@@ -21,7 +21,7 @@ import pandas as pd
 from . import __version__
 from .centerline import BranchInput, trace_centerlines
 from .crosssection import CrossSection
-from .errors import VesselgeomWarning
+from .errors import InputError, VesselgeomWarning
 from .graph import build_graph, prune_spurs
 from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
 from .io.affine import voxel_sizes
@@ -133,7 +133,11 @@ def analyze(
     t0 = time.perf_counter()
     if isinstance(source, np.ndarray):
         volume = volume_from_array(
-            source, affine=affine, spacing=spacing, label=settings.label, threshold=settings.threshold
+            source,
+            affine=affine,
+            spacing=spacing,
+            label=settings.label,
+            threshold=settings.threshold,
         )
     else:
         if affine is not None or spacing is not None:
@@ -142,18 +146,29 @@ def analyze(
     return analyze_volume(volume, settings=settings, load_seconds=time.perf_counter() - t0)
 
 
-def analyze_volume(
-    volume: Volume, *, settings: Settings | None = None, load_seconds: float = 0.0
-) -> Result:
+def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_seconds: float = 0.0) -> Result:
     """Run the pipeline on a loaded :class:`~vesselgeom.io.Volume`."""
     settings = settings or Settings()
-    timings = {"load": load_seconds, "components": 0.0, "thin": 0.0, "graph": 0.0, "trace": 0.0,
-               "measure": 0.0}
+    if not volume.mask.any():
+        raise InputError(
+            f"{volume.source}: mask is empty (no foreground voxels after label/threshold selection)"
+        )
+    timings = {
+        "load": load_seconds,
+        "components": 0.0,
+        "thin": 0.0,
+        "graph": 0.0,
+        "trace": 0.0,
+        "measure": 0.0,
+    }
     notes: list[str] = list(volume.warnings)
     spacing = voxel_sizes(volume.affine)
     voxel_mm = float(np.mean(spacing))
-    min_voxels = (settings.min_component_mm3 / volume.voxel_volume_mm3
-                  if settings.min_component_mm3 is not None else settings.min_component_voxels)
+    min_voxels = (
+        settings.min_component_mm3 / volume.voxel_volume_mm3
+        if settings.min_component_mm3 is not None
+        else settings.min_component_voxels
+    )
     branch_rows: list[dict] = []
     point_parts: list[dict[str, np.ndarray]] = []
     junction_rows: list[dict] = []
@@ -177,8 +192,9 @@ def analyze_volume(
         t = time.perf_counter()
         boundary = BoundaryDistance(comp.mask, aff)
         graph = build_graph(skel)
-        graph = prune_spurs(graph, linear=aff[:3, :3], radius_at=boundary.at_index,
-                            ratio=settings.prune_ratio)
+        graph = prune_spurs(
+            graph, linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
+        )
         timings["graph"] += time.perf_counter() - t
 
         t = time.perf_counter()
@@ -200,18 +216,29 @@ def analyze_volume(
                 kind = "internal"
             flags = ("touches_image_edge",) if comp.touches_border else ()
             inputs.append(BranchInput(world, b.closed, free[0], free[1]))
-            contexts.append(BranchContext(
-                next_branch, comp.component_id, kind,
-                node_ids.get(b.start), node_ids.get(b.end), flags,
-            ))
+            contexts.append(
+                BranchContext(
+                    next_branch,
+                    comp.component_id,
+                    kind,
+                    node_ids.get(b.start),
+                    node_ids.get(b.end),
+                    flags,
+                )
+            )
             next_branch += 1
-        lines = trace_centerlines(inputs, section=section, boundary=boundary, voxel_mm=voxel_mm,
-                                  settings=settings)
+        lines = trace_centerlines(
+            inputs, section=section, boundary=boundary, voxel_mm=voxel_mm, settings=settings
+        )
         timings["trace"] += time.perf_counter() - t
 
         t = time.perf_counter()
         for cl, ctx in zip(lines, contexts, strict=True):
-            branch_rows.append(branch_row(cl, ctx, settings=settings, voxel_mm=voxel_mm))
+            branch_rows.append(
+                branch_row(
+                    cl, ctx, settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing.max())
+                )
+            )
             if cl is not None:
                 point_parts.append(point_columns(cl, ctx.branch_id))
         for nid in sorted(graph.nodes):
@@ -225,14 +252,20 @@ def analyze_volume(
                     ends.append((ctx.branch_id, cl, True))
                 if b.end == nid:
                     ends.append((ctx.branch_id, cl, False))
-            junction_rows.append(junction_row(
-                node_ids[nid], comp.component_id, pos, float(boundary(pos[None])[0]), ends,
-                settings=settings,
-            ))
+            junction_rows.append(
+                junction_row(
+                    node_ids[nid],
+                    comp.component_id,
+                    pos,
+                    float(boundary(pos[None])[0]),
+                    ends,
+                    settings=settings,
+                )
+            )
         timings["measure"] += time.perf_counter() - t
         t = time.perf_counter()
 
-    for msg in notes[len(volume.warnings):]:
+    for msg in notes[len(volume.warnings) :]:
         warnings.warn(f"{volume.source}: {msg}", VesselgeomWarning, stacklevel=2)
     branches = make_table(BRANCH_COLUMNS, _columns(branch_rows, BRANCH_COLUMNS))
     points = make_table(POINT_COLUMNS, _concat(point_parts, POINT_COLUMNS))

@@ -61,7 +61,7 @@ class Settings:
         ``docs/validation.md``).
     inflection_dip : float
         A curvature minimum counts as an inflection when it is below this fraction of both neighbouring
-        maxima and the normals at those maxima point in opposite directions. Default 0.5.
+        maxima and the binormals at those maxima point in opposite directions. Default 0.5.
     inflection_end_radii : float
         Minima within this many radii of a branch end are not counted. Default 2.0.
     junction_angle_radii : float

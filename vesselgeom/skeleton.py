@@ -41,9 +41,7 @@ class Component:
     touches_border: bool
 
 
-def iter_components(
-    mask: np.ndarray, *, min_voxels: float, fill_holes: bool = True
-) -> Iterator[Component]:
+def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = True) -> Iterator[Component]:
     """Yield the 26-connected components of ``mask`` with at least ``min_voxels`` voxels.
 
     Parameters

@@ -73,7 +73,9 @@ def fit_curve(points: np.ndarray, *, knot_spacing: float, closed: bool = False) 
     CurveFit or None
         None when fewer than two distinct points remain.
     """
-    pts = np.asarray(points, float)
+    pts = np.asarray(points, float).reshape(-1, 3)
+    if len(pts) < 2:
+        return None
     if closed:
         pts = np.concatenate([pts, pts[:1]])
     pts, u = _chord_parameter(pts)

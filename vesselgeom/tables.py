@@ -80,9 +80,7 @@ class Column:
         if not self.name or not self.name.isidentifier():
             raise InputError(f"{_ARRAY}: column name {self.name!r} is not an identifier; rename it")
         if self.dtype not in _DTYPES:
-            raise InputError(
-                f"{_ARRAY}: column {self.name!r} has dtype {self.dtype!r}; use one of {_DTYPES}"
-            )
+            raise InputError(f"{_ARRAY}: column {self.name!r} has dtype {self.dtype!r}; use one of {_DTYPES}")
         if not self.description.strip():
             raise InputError(f"{_ARRAY}: column {self.name!r} has no description; write one")
 
@@ -156,43 +154,46 @@ BRANCH_COLUMNS: tuple[Column, ...] = (
            "the arc-length mean of sqrt(curvature^2 + torsion^2) as step_mm shrinks. In rad/mm. "
            "Empty when the branch has fewer than four resampled points."),
     Column("mean_curvature_per_mm", "float64", "1/mm",
-           "Arc-length mean of the curvature k = |dT/ds| of the smoothed centreline, equal to "
-           "total_curvature_rad / length_mm; 1/k is the radius of the osculating circle. In "
-           f"1/mm. {_NOT_FITTED}"),
+           "Arc-length mean of the curvature k = |dT/ds| of the smoothed centreline over the "
+           "points marked in_summary in points.csv (ends trimmed by about a radius), equal to "
+           "total_curvature_rad divided by the arc length of that stretch; 1/k is the radius of "
+           f"the osculating circle. In 1/mm. {_NOT_FITTED}"),
     Column("max_curvature_per_mm", "float64", "1/mm",
-           "Largest curvature over the branch's resampled points (the maximum of "
-           f"curvature_per_mm in points.csv). In 1/mm. {_NOT_FITTED}"),
+           "Largest curvature over the branch's points marked in_summary (the maximum of "
+           f"curvature_per_mm there). In 1/mm. {_NOT_FITTED}"),
     Column("total_curvature_rad", "float64", "rad",
            "Total curvature, the integral of curvature over arc length (Hart et al. 1999, Int J "
-           "Med Inform 53:239-252): the total angle the tangent turns through, 2 pi for a full "
-           f"circle. In rad. {_NOT_FITTED}"),
+           "Med Inform 53:239-252), over the stretch marked in_summary (the whole ring for a "
+           "loop): the total angle the tangent turns through there, 2 pi for a full circle. In "
+           f"rad. {_NOT_FITTED}"),
     Column("mean_torsion_per_mm", "float64", "1/mm",
            "Signed torsion summary (dB/ds = -tau N, positive for a right-handed helix): despite "
-           "the name, the median of torsion_per_mm over the points where torsion is defined, "
+           "the name, the median of torsion_per_mm over the in_summary points where torsion is "
+           "defined, "
            "used as the robust summary because torsion estimates have heavy tails where "
            "curvature is small. In 1/mm. Empty when torsion is defined at no point of the "
            "branch."),
     Column("mean_abs_torsion_per_mm", "float64", "1/mm",
-           "Arc-length mean of |torsion| over the stretch where torsion is defined, i.e. "
+           "Arc-length mean of |torsion| over the in_summary stretch where torsion is defined, i.e. "
            "total_abs_torsion_rad divided by the arc length of that stretch. In 1/mm. Empty when"
            " torsion is defined at no point of the branch."),
     Column("total_abs_torsion_rad", "float64", "rad",
-           "Integral of |torsion| over arc length on the stretch where torsion is defined: the "
+           "Integral of |torsion| over arc length on the in_summary stretch where torsion is defined: the "
            "total angle the binormal B turns through there. In rad. Empty when torsion is "
            "defined at no point of the branch."),
     Column("torsion_defined_fraction", "float64", "1",
-           "Fraction (0 to 1) of the branch's resampled points, which are equally spaced in arc "
+           "Fraction (0 to 1) of the branch's in_summary points, which are equally spaced in arc "
            "length, where curvature is above the curvature noise floor recorded in run.json, so "
            f"that torsion is reported there. Dimensionless. {_NOT_FITTED}"),
     Column("mean_radius_mm", "float64", "mm",
-           "Arc-length mean of radius_mm over the branch's points in points.csv (distance from "
+           "Mean of radius_mm over the branch's in_summary points in points.csv (distance from "
            "the centreline to the nearest voxel outside the mask). In mm. Empty when the radius "
            "could be measured at no point."),
     Column("min_radius_mm", "float64", "mm",
-           "Smallest radius_mm over the branch's points in points.csv. In mm. Empty when the "
+           "Smallest radius_mm over the branch's in_summary points. In mm. Empty when the "
            "radius could be measured at no point."),
     Column("max_radius_mm", "float64", "mm",
-           "Largest radius_mm over the branch's points in points.csv. In mm. Empty when the "
+           "Largest radius_mm over the branch's in_summary points. In mm. Empty when the "
            "radius could be measured at no point."),
     *_xyz("start_",
           "the first centreline point (at start_node; for a loop, where the ring is opened)",
@@ -241,6 +242,10 @@ POINT_COLUMNS: tuple[Column, ...] = (
                "start towards its end. Dimensionless. Never empty.")
         for axis in "xyz"
     ),
+    Column("in_summary", "bool", "",
+           "True where the point enters the branch summaries in branches.csv (curvature, torsion "
+           "and radius statistics); False within one smoothing scale (about a radius) of either "
+           "end and on the straight stub that extends a terminal end. Never empty."),
 )
 
 JUNCTION_COLUMNS: tuple[Column, ...] = (
@@ -312,8 +317,7 @@ _CONVENTIONS: dict[str, str] = {
         " is a straight continuation."
     ),
     "direction": (
-        "Each branch runs from start_node to end_node: arc_mm grows and the tangent points in "
-        "that direction."
+        "Each branch runs from start_node to end_node: arc_mm grows and the tangent points in that direction."
     ),
     "missing": (
         "An empty field in a numeric column means the value is not defined for that row (for "
@@ -322,8 +326,7 @@ _CONVENTIONS: dict[str, str] = {
         "text field is the empty string, e.g. flags with no reasons."
     ),
     "lists": (
-        "Lists inside one field (flags, branch_ids, angles_deg) are separated by semicolons "
-        "without spaces."
+        "Lists inside one field (flags, branch_ids, angles_deg) are separated by semicolons without spaces."
     ),
     "file_format": (
         "CSV with a header row of the column names, comma separators, RFC 4180 quoting, UTF-8, "
@@ -459,13 +462,10 @@ def columns_document(schemas: Mapping[str, tuple[Column, ...]]) -> dict[str, Any
     tables: dict[str, list[dict[str, str]]] = {}
     for file_name, schema in schemas.items():
         if not isinstance(file_name, str) or not file_name:
-            raise InputError(
-                f"{_ARRAY}: table name {file_name!r} is not a string; use e.g. 'x.csv'"
-            )
+            raise InputError(f"{_ARRAY}: table name {file_name!r} is not a string; use e.g. 'x.csv'")
         _check_schema(schema, file_name)
         tables[file_name] = [
-            {"name": c.name, "unit": c.unit, "dtype": c.dtype, "description": c.description}
-            for c in schema
+            {"name": c.name, "unit": c.unit, "dtype": c.dtype, "description": c.description} for c in schema
         ]
     return {"tables": tables, "conventions": dict(_CONVENTIONS)}
 
@@ -473,9 +473,7 @@ def columns_document(schemas: Mapping[str, tuple[Column, ...]]) -> dict[str, Any
 def _check_schema(schema: Any, source: str) -> None:
     valid = isinstance(schema, tuple) and schema and all(isinstance(c, Column) for c in schema)
     if not valid:
-        raise InputError(
-            f"{source}: schema is not a non-empty tuple of Column; pass BRANCH_COLUMNS etc."
-        )
+        raise InputError(f"{source}: schema is not a non-empty tuple of Column; pass BRANCH_COLUMNS etc.")
     names = [c.name for c in schema]
     duplicates = sorted({n for n in names if names.count(n) > 1})
     if duplicates:
@@ -572,9 +570,7 @@ def _find_schema(df: pd.DataFrame, path: Path) -> tuple[Column, ...]:
     for schema in TABLE_SCHEMAS.values():
         if names == {c.name for c in schema}:
             return schema
-    raise InputError(
-        f"{path}: columns match none of {list(TABLE_SCHEMAS)}; pass schema= to write_csv"
-    )
+    raise InputError(f"{path}: columns match none of {list(TABLE_SCHEMAS)}; pass schema= to write_csv")
 
 
 def _read_header(path: Path) -> list[str]:

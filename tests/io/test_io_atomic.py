@@ -17,9 +17,7 @@ class _Boom(RuntimeError):
 
 def _snapshot(folder):
     """{relative path: bytes} for every file below `folder`."""
-    return {
-        str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()
-    }
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
 
 
 def _hidden_leftovers(parent):

@@ -134,9 +134,7 @@ def test_meter_units_are_converted_to_mm(tmp_path):
 
 
 def test_unknown_units_warn_and_assume_mm(tmp_path):
-    path = _save(
-        tmp_path / "u.nii", _truth().astype(np.uint8), np.diag([0.7, 0.7, 0.7, 1.0]), units=None
-    )
+    path = _save(tmp_path / "u.nii", _truth().astype(np.uint8), np.diag([0.7, 0.7, 0.7, 1.0]), units=None)
     assert nib.load(path).header.get_xyzt_units()[0] == "unknown"  # nibabel's default
     with pytest.warns(VesselgeomWarning, match="spatial units unknown; assumed mm") as record:
         vol = load_nifti(path)
@@ -171,8 +169,7 @@ def test_probability_map_needs_threshold(tmp_path):
     with pytest.raises(InputError) as exc_info:
         load_nifti(path)
     assert str(exc_info.value) == (
-        f"{path}: float image with non-binary values; "
-        "pass --threshold T (e.g. 0.5 for a probability map)"
+        f"{path}: float image with non-binary values; pass --threshold T (e.g. 0.5 for a probability map)"
     )
     vol = load_nifti(path, threshold=0.5)
     np.testing.assert_array_equal(vol.mask, prob >= 0.5)  # NaN >= 0.5 is False (IEEE 754)

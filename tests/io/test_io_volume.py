@@ -46,9 +46,7 @@ def test_volume_from_array_with_spacing():
 
 
 def test_volume_from_array_with_affine_keeps_it():
-    affine = np.array(
-        [[0.0, 0.0, -0.8, 10.0], [-0.5, 0.0, 0.0, 3.0], [0.0, 0.6, 0.0, -2.0], [0, 0, 0, 1]]
-    )
+    affine = np.array([[0.0, 0.0, -0.8, 10.0], [-0.5, 0.0, 0.0, 3.0], [0.0, 0.6, 0.0, -2.0], [0, 0, 0, 1]])
     vol = volume_from_array(_truth(), affine=affine, source="case7")
     np.testing.assert_array_equal(vol.affine, affine)
     np.testing.assert_allclose(vol.spacing, (0.5, 0.6, 0.8))  # column norms
@@ -88,9 +86,7 @@ def test_trailing_singleton_axes_are_squeezed(shape):
     np.testing.assert_array_equal(vol.mask, truth)
 
 
-@pytest.mark.parametrize(
-    ("shape", "ndim"), [((6, 7, 8, 2), 4), ((6, 7), 2), ((6,), 1), ((2, 6, 7, 8), 4)]
-)
+@pytest.mark.parametrize(("shape", "ndim"), [((6, 7, 8, 2), 4), ((6, 7), 2), ((6,), 1), ((2, 6, 7, 8), 4)])
 def test_non_3d_arrays_are_errors(shape, ndim):
     with pytest.raises(InputError, match=f"mask has {ndim} dimensions") as exc_info:
         volume_from_array(np.zeros(shape, dtype=np.uint8), spacing=1.0)
@@ -183,9 +179,7 @@ def test_integer_label_selects_that_label():
     rng = np.random.default_rng(RNG_SEED)
     labels = rng.choice([0, 1, 2, 7], size=(5, 6, 7))
     np.testing.assert_array_equal(select_foreground(labels.astype(np.uint16), label=7), labels == 7)
-    np.testing.assert_array_equal(
-        select_foreground(labels.astype(np.int32), label=np.int64(2)), labels == 2
-    )
+    np.testing.assert_array_equal(select_foreground(labels.astype(np.int32), label=np.int64(2)), labels == 2)
 
 
 def test_negative_labels_work_on_signed_images():
@@ -255,8 +249,7 @@ def test_float_non_binary_requires_threshold():
     with pytest.raises(InputError) as exc_info:
         select_foreground(image, source="prob.nii.gz")
     assert str(exc_info.value) == (
-        "prob.nii.gz: float image with non-binary values; "
-        "pass --threshold T (e.g. 0.5 for a probability map)"
+        "prob.nii.gz: float image with non-binary values; pass --threshold T (e.g. 0.5 for a probability map)"
     )
 
 

@@ -77,9 +77,7 @@ def validate_affine(affine: np.ndarray | Sequence, *, source: str = "<array>") -
     try:
         out = np.array(affine, dtype=np.float64, copy=True)
     except (TypeError, ValueError):
-        raise AffineError(
-            f"{source}: affine is not a numeric array; pass a 4x4 float array in mm"
-        ) from None
+        raise AffineError(f"{source}: affine is not a numeric array; pass a 4x4 float array in mm") from None
     problem = _affine_problem(out)
     if problem is not None:
         raise AffineError(f"{source}: {problem}; {_AFFINE_HINT}")
@@ -148,8 +146,7 @@ def check_spacing(
             values = np.asarray(spacing, dtype=np.float64)
         except (TypeError, ValueError):
             raise InputError(
-                f"{source}: spacing {spacing!r} is not numeric; "
-                "pass voxel sizes in mm, e.g. (0.5, 0.5, 1.0)"
+                f"{source}: spacing {spacing!r} is not numeric; pass voxel sizes in mm, e.g. (0.5, 0.5, 1.0)"
             ) from None
         if values.ndim == 0:
             values = np.full(3, float(values))
@@ -160,8 +157,7 @@ def check_spacing(
             )
     if not np.all(np.isfinite(values)) or not np.all(values > 0):
         raise InputError(
-            f"{source}: spacing {values.tolist()} must be finite and positive; "
-            "pass voxel sizes in mm"
+            f"{source}: spacing {values.tolist()} must be finite and positive; pass voxel sizes in mm"
         )
     return (float(values[0]), float(values[1]), float(values[2]))
 
@@ -215,9 +211,7 @@ def _as_points(points: np.ndarray | Sequence, *, name: str) -> np.ndarray:
     except (TypeError, ValueError):
         raise InputError(f"<array>: {name} is not numeric; pass an (N, 3) float array") from None
     if arr.ndim == 0 or arr.shape[-1] != 3:
-        raise InputError(
-            f"<array>: {name} has shape {arr.shape}, expected (N, 3); pass one row per point"
-        )
+        raise InputError(f"<array>: {name} has shape {arr.shape}, expected (N, 3); pass one row per point")
     return arr
 
 

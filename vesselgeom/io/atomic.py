@@ -164,9 +164,7 @@ def atomic_write_text(path: str | os.PathLike[str], text: str, *, encoding: str 
         tmp = _sibling_name(target, "tmp")
         try:
             # 0o666 filtered by the umask: the same permissions a plain open() would give
-            fd = os.open(
-                tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o666
-            )
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o666)
         except FileExistsError:
             continue
         break

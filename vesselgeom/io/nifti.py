@@ -80,9 +80,7 @@ def _spatial_units(header: nib.Nifti1Header, *, source: str, found: list[str]) -
     return _UNITS_TO_MM[label]
 
 
-def _world_affine(
-    img: nib.Nifti1Image, factor: float, *, source: str, found: list[str]
-) -> np.ndarray:
+def _world_affine(img: nib.Nifti1Image, factor: float, *, source: str, found: list[str]) -> np.ndarray:
     """The image affine in mm, or a diagonal one from the voxel sizes if it is unusable."""
     header = img.header
     affine = np.array(img.affine, dtype=np.float64)
@@ -189,8 +187,7 @@ def load_nifti(
         data = np.asanyarray(img.dataobj)
     except _READ_ERRORS as exc:
         raise InputError(
-            f"{source}: cannot read the image data ({_reason(exc)}); "
-            "the file may be truncated or damaged"
+            f"{source}: cannot read the image data ({_reason(exc)}); the file may be truncated or damaged"
         ) from exc
     return _build_volume(
         data.reshape(shape),

@@ -79,13 +79,10 @@ class Volume:
                 else type(mask).__name__
             )
             raise InputError(
-                f"{self.source}: Volume.mask must be a 3D bool array, got {got}; "
-                "use volume_from_array"
+                f"{self.source}: Volume.mask must be a 3D bool array, got {got}; use volume_from_array"
             )
         if self.input_units not in INPUT_UNITS:
-            raise InputError(
-                f"{self.source}: input_units {self.input_units!r} is not one of {INPUT_UNITS}"
-            )
+            raise InputError(f"{self.source}: input_units {self.input_units!r} is not one of {INPUT_UNITS}")
         mask = mask.view()
         mask.flags.writeable = False
         affine = validate_affine(self.affine, source=self.source)
@@ -136,9 +133,7 @@ def _squeeze_shape(shape: tuple[int, ...], *, source: str) -> tuple[int, int, in
             hint += f" (this image holds {volumes} volumes; extract one first)"
         raise InputError(f"{source}: mask has {len(shape)} dimensions (shape {shape}); {hint}")
     if min(squeezed) == 0:
-        raise InputError(
-            f"{source}: mask has shape {squeezed} with no voxels; pass a non-empty 3D volume"
-        )
+        raise InputError(f"{source}: mask has shape {squeezed} with no voxels; pass a non-empty 3D volume")
     return (int(squeezed[0]), int(squeezed[1]), int(squeezed[2]))
 
 
@@ -153,9 +148,7 @@ def _list_labels(values: np.ndarray) -> str:
 
 def _check_label(label: object, *, source: str) -> int:
     if isinstance(label, bool | np.bool_) or not isinstance(label, Integral):
-        raise InputError(
-            f"{source}: label {label!r} is not an integer; pass an integer label value"
-        )
+        raise InputError(f"{source}: label {label!r} is not an integer; pass an integer label value")
     if int(label) == 0:
         raise InputError(f"{source}: label 0 is the background; pass a non-zero label value")
     return int(label)
@@ -187,8 +180,7 @@ def _select_label_int(array: np.ndarray, label: int, *, source: str) -> np.ndarr
 def _all_integral(array: np.ndarray) -> bool:
     """True if every non-NaN value is a finite whole number (one i-slice at a time: less memory)."""
     return all(
-        bool(np.all(np.isnan(s) | (np.isfinite(s) & (np.floor(s) == s))))
-        for s in np.atleast_1d(array)
+        bool(np.all(np.isnan(s) | (np.isfinite(s) & (np.floor(s) == s)))) for s in np.atleast_1d(array)
     )
 
 
@@ -264,9 +256,7 @@ def select_foreground(
     if kind == "f":
         nan = np.isnan(array)
         if nan.all():
-            raise InputError(
-                f"{source}: image is all NaN; check that the file holds a segmentation"
-            )
+            raise InputError(f"{source}: image is all NaN; check that the file holds a segmentation")
         if threshold is not None:
             return array >= threshold  # NaN >= t is False: NaN voxels are background
         if label is not None:

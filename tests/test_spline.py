@@ -1,0 +1,148 @@
+"""Tests for vesselgeom.spline: least-squares quintic fits and arc-length resampling.
+
+Independent references used below:
+- Helix (a cos t, a sin t, b t): length 2 pi n sqrt(a^2+b^2), kappa = a/(a^2+b^2), tau = b/(a^2+b^2)
+  (METHODS.md, do Carmo 1976 sec. 1-5); circle of radius R: length 2 pi R, kappa = 1/R.
+- Arc length of the fitted spline by adaptive quadrature of |r'(u)| (:func:`scipy.integrate.quad`).
+- Chord versus arc of a curve with curvature kappa: chord = h (1 - kappa^2 h^2 / 24 + O(h^4)).
+- Polynomial interpolation: n points and a degree n - 1 polynomial with no interior knots are fitted
+  exactly (de Boor 1978, least squares with as many coefficients as points is interpolation).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.integrate import quad
+
+from vesselgeom.frames import frenet_frame
+from vesselgeom.spline import arc_length_samples, fit_curve
+
+
+def _helix_points(a: float, b: float, turns: float, step: float) -> np.ndarray:
+    """Exact helix points at an arc-length step of about ``step`` mm."""
+    n = int(round(2 * np.pi * turns * np.hypot(a, b) / step)) + 1
+    t = np.linspace(0.0, 2 * np.pi * turns, n)
+    return np.stack([a * np.cos(t), a * np.sin(t), b * t], axis=1)
+
+
+def _ring_points(radius: float, n: int, centre=(1.0, -2.0, 3.0)) -> np.ndarray:
+    th = 2 * np.pi * np.arange(n) / n
+    return np.stack([radius * np.cos(th), radius * np.sin(th), np.zeros(n)], axis=1) + centre
+
+
+@pytest.mark.parametrize(
+    ("a", "b", "step", "knots"), [(10.0, 3.0, 0.5, 4.0), (10.0, 2.0, 1.0, 6.0), (5.0, 4.0, 0.3, 3.0)]
+)
+def test_helix_fit_length_curvature_torsion(a, b, step, knots):
+    # METHODS.md helix closed forms: length within 0.1 %; kappa and tau from frenet_frame of the
+    # resampled derivatives within 1 % once one knot spacing is trimmed from each end.
+    turns = 2.0
+    fit = fit_curve(_helix_points(a, b, turns, step), knot_spacing=knots)
+    assert fit is not None and fit.degree == 5 and not fit.closed
+    arc, r, d1, d2, d3 = arc_length_samples(fit, 0.5)
+    length = 2 * np.pi * turns * np.hypot(a, b)
+    assert arc[-1] == pytest.approx(length, rel=1e-3)
+    f = frenet_frame(d1, d2, d3)
+    inner = (arc > knots) & (arc < arc[-1] - knots)
+    assert inner.sum() > 0.8 * len(arc)
+    np.testing.assert_allclose(f.curvature[inner], a / (a**2 + b**2), rtol=0.01)
+    np.testing.assert_allclose(f.torsion[inner], b / (a**2 + b**2), rtol=0.01)
+    # resampled positions lie on the helix: radius a about the z axis, z = b * angle
+    np.testing.assert_allclose(np.hypot(r[:, 0], r[:, 1]), a, atol=1e-3 * a)
+
+
+def test_helix_fit_length_matches_quadrature():
+    # The resampled total arc length equals the spline's own length by adaptive quadrature of |r'(u)|.
+    fit = fit_curve(_helix_points(10.0, 3.0, 2.0, 0.5), knot_spacing=4.0)
+    arc, *_ = arc_length_samples(fit, 0.5)
+    ref, _ = quad(lambda u: np.linalg.norm(fit(np.array([u]), 1)), fit.u0, fit.u1, limit=500)
+    assert arc[-1] == pytest.approx(ref, rel=1e-8)
+
+
+@pytest.mark.parametrize("step", [0.5, 0.73, 2.0])
+def test_resampling_steps_equal_and_not_larger(step):
+    # arc_length_samples: equal arc steps no larger than requested, both ends included; consecutive
+    # points are one step apart along the curve, so their chord is h (1 - kappa^2 h^2 / 24) <= h.
+    a, b = 10.0, 3.0
+    kappa = a / (a**2 + b**2)
+    fit = fit_curve(_helix_points(a, b, 2.0, 0.5), knot_spacing=4.0)
+    arc, r, *_ = arc_length_samples(fit, step)
+    h = np.diff(arc)
+    assert arc[0] == 0.0
+    np.testing.assert_allclose(h, h[0], rtol=1e-12)
+    assert h[0] <= step
+    assert h[0] > step * (1 - 1.0 / len(h))  # the smallest equal division not exceeding ``step``
+    chord = np.linalg.norm(np.diff(r, axis=0), axis=1)
+    np.testing.assert_allclose(chord, h * (1 - kappa**2 * h**2 / 24), rtol=1e-5)
+    np.testing.assert_allclose(r[[0, -1]], fit(np.array([fit.u0, fit.u1])), atol=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("radius", "n", "knots"), [(8.0, 60, 4.0), (8.0, 200, 4.0), (3.0, 40, 2.0), (3.0, 100, 2.0)]
+)
+def test_closed_ring_fit(radius, n, knots):
+    # Circle of radius R: closed fit is periodic (position and derivatives match across the seam),
+    # kappa = 1/R within 0.5 % everywhere, length 2 pi R (METHODS.md "Circle"). Knot spacing at most
+    # 2/3 R: the quintic's approximation error grows like (h/R)^6 (de Boor 1978), and at h > R the
+    # curvature ripple reaches about 1 % all round the loop (not only at the seam).
+    pts = _ring_points(radius, n)
+    fit = fit_curve(pts, knot_spacing=knots, closed=True)
+    assert fit is not None and fit.closed and fit.degree == 5
+    ends = np.array([fit.u0, fit.u1])
+    # the seam: gaps far below the fit's own approximation error budget (0.1 um on mm data)
+    assert np.linalg.norm(fit(ends[:1]) - fit(ends[1:])) < 1e-4
+    for nu in (1, 2):
+        v0, v1 = fit(ends[:1], nu)[0], fit(ends[1:], nu)[0]
+        assert np.linalg.norm(v0 - v1) < 1e-3 * np.linalg.norm(v0)
+    arc, r, d1, d2, d3 = arc_length_samples(fit, 0.7)
+    f = frenet_frame(d1, d2, d3)
+    np.testing.assert_allclose(f.curvature, 1 / radius, rtol=0.005)
+    # one period without repeating the first point: the last step closes the loop
+    h = arc[1] - arc[0]
+    assert arc[-1] + h == pytest.approx(2 * np.pi * radius, rel=1e-3)
+    np.testing.assert_allclose(np.diff(arc), h, rtol=1e-12)
+    assert h <= 0.7
+    # the closing step is one arc step: chord 2 R sin(h / 2R)
+    assert np.linalg.norm(r[-1] - r[0]) == pytest.approx(2 * radius * np.sin(h / (2 * radius)), rel=1e-4)
+    # every resampled point is on the circle
+    np.testing.assert_allclose(np.linalg.norm(r - (1.0, -2.0, 3.0), axis=1), radius, rtol=1e-4)
+
+
+def test_closed_fit_starting_point_irrelevant():
+    # A ring is the same curve whatever point starts the list: the curvature stays 1/R (0.5 %).
+    pts = np.roll(_ring_points(6.0, 80), 17, axis=0)
+    fit = fit_curve(pts, knot_spacing=4.0, closed=True)
+    _, _, d1, d2, d3 = arc_length_samples(fit, 0.5)
+    np.testing.assert_allclose(frenet_frame(d1, d2, d3).curvature, 1 / 6.0, rtol=0.005)
+
+
+def test_three_points_low_degree_interpolates():
+    # Three points: a quadratic (degree 2 < 3, so torsion undefined) through all three points.
+    pts = np.array([[0.0, 0.0, 0.0], [1.0, 1.0, 0.0], [2.0, 0.0, 1.0]])
+    fit = fit_curve(pts, knot_spacing=4.0)
+    assert fit is not None and fit.degree == 2
+    u = np.r_[0.0, np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))]
+    assert fit.u0 == 0.0 and fit.u1 == pytest.approx(u[-1])
+    np.testing.assert_allclose(fit(u), pts, atol=1e-12)
+    np.testing.assert_allclose(fit(u, 3), 0.0, atol=1e-12)  # a quadratic has no third derivative
+
+
+def test_two_points_straight_segment():
+    # Two points: a degree-1 fit, the straight segment between them.
+    pts = np.array([[1.0, 2.0, 3.0], [4.0, 6.0, 3.0]])
+    fit = fit_curve(pts, knot_spacing=2.0)
+    assert fit is not None and fit.degree == 1
+    np.testing.assert_allclose(fit(np.array([0.0, 2.5, 5.0])), [pts[0], pts.mean(axis=0), pts[1]])
+
+
+@pytest.mark.parametrize("closed", [False, True])
+@pytest.mark.parametrize("pts", [np.array([[1.0, 2.0, 3.0]]), np.array([[1.0, 2.0, 3.0], [1.0, 2.0, 3.0]])])
+def test_fewer_than_two_distinct_points_returns_none(pts, closed):
+    # Documented: None when fewer than two distinct points remain.
+    assert fit_curve(pts, knot_spacing=2.0, closed=closed) is None
+
+
+def test_no_points_returns_none():
+    # Documented: None when fewer than two distinct points remain (here none at all).
+    assert fit_curve(np.zeros((0, 3)), knot_spacing=2.0) is None
