@@ -1,12 +1,13 @@
-"""Tests for vesselgeom.spline: least-squares quintic fits and arc-length resampling.
+"""Tests for vesselgeom.spline: penalised quintic fits and arc-length resampling.
 
 Independent references used below:
 - Helix (a cos t, a sin t, b t): length 2 pi n sqrt(a^2+b^2), kappa = a/(a^2+b^2), tau = b/(a^2+b^2)
   (METHODS.md, do Carmo 1976 sec. 1-5); circle of radius R: length 2 pi R, kappa = 1/R.
 - Arc length of the fitted spline by adaptive quadrature of |r'(u)| (:func:`scipy.integrate.quad`).
 - Chord versus arc of a curve with curvature kappa: chord = h (1 - kappa^2 h^2 / 24 + O(h^4)).
-- Polynomial interpolation: n points and a degree n - 1 polynomial with no interior knots are fitted
-  exactly (de Boor 1978, least squares with as many coefficients as points is interpolation).
+- Polynomial reproduction: a difference penalty of order q leaves polynomials of degree < q
+  unpenalised (Eilers and Marx 1996), so 2 or 3 points are fitted exactly by the line or the quadratic
+  through them.
 """
 
 from __future__ import annotations
@@ -36,25 +37,29 @@ def _ring_points(radius: float, n: int, centre=(1.0, -2.0, 3.0)) -> np.ndarray:
 )
 def test_helix_fit_length_curvature_torsion(a, b, step, knots):
     # METHODS.md helix closed forms: length within 0.1 %; kappa and tau from frenet_frame of the
-    # resampled derivatives within 1 % once one knot spacing is trimmed from each end.
+    # resampled derivatives within 1 % once 3 x smoothing is trimmed from each end: a penalised spline's
+    # ends feel the missing data over about one cut-off wavelength (2 x smoothing, Eilers and Marx 1996),
+    # and torsion, a third derivative, rings on for about one more smoothing length (measured here).
     turns = 2.0
-    fit = fit_curve(_helix_points(a, b, turns, step), knot_spacing=knots)
+    fit = fit_curve(_helix_points(a, b, turns, step), smoothing_mm=knots)
     assert fit is not None and fit.degree == 5 and not fit.closed
-    arc, r, d1, d2, d3 = arc_length_samples(fit, 0.5)
+    arc, _, r, d1, d2, d3 = arc_length_samples(fit, 0.5)
     length = 2 * np.pi * turns * np.hypot(a, b)
     assert arc[-1] == pytest.approx(length, rel=1e-3)
     f = frenet_frame(d1, d2, d3)
-    inner = (arc > knots) & (arc < arc[-1] - knots)
-    assert inner.sum() > 0.8 * len(arc)
+    inner = (arc > 3 * knots) & (arc < arc[-1] - 3 * knots)
+    assert inner.sum() > 0.7 * len(arc)
     np.testing.assert_allclose(f.curvature[inner], a / (a**2 + b**2), rtol=0.01)
     np.testing.assert_allclose(f.torsion[inner], b / (a**2 + b**2), rtol=0.01)
-    # resampled positions lie on the helix: radius a about the z axis, z = b * angle
-    np.testing.assert_allclose(np.hypot(r[:, 0], r[:, 1]), a, atol=1e-3 * a)
+    # resampled positions lie on the helix away from the ends: radius a about the z axis
+    np.testing.assert_allclose(np.hypot(r[inner, 0], r[inner, 1]), a, atol=1e-3 * a)
+    # and within 0.2 % of a at the very ends (the end effect, measured 0.15 % at 6 mm smoothing)
+    np.testing.assert_allclose(np.hypot(r[:, 0], r[:, 1]), a, atol=2e-3 * a)
 
 
 def test_helix_fit_length_matches_quadrature():
     # The resampled total arc length equals the spline's own length by adaptive quadrature of |r'(u)|.
-    fit = fit_curve(_helix_points(10.0, 3.0, 2.0, 0.5), knot_spacing=4.0)
+    fit = fit_curve(_helix_points(10.0, 3.0, 2.0, 0.5), smoothing_mm=4.0)
     arc, *_ = arc_length_samples(fit, 0.5)
     ref, _ = quad(lambda u: np.linalg.norm(fit(np.array([u]), 1)), fit.u0, fit.u1, limit=500)
     assert arc[-1] == pytest.approx(ref, rel=1e-8)
@@ -63,31 +68,35 @@ def test_helix_fit_length_matches_quadrature():
 @pytest.mark.parametrize("step", [0.5, 0.73, 2.0])
 def test_resampling_steps_equal_and_not_larger(step):
     # arc_length_samples: equal arc steps no larger than requested, both ends included; consecutive
-    # points are one step apart along the curve, so their chord is h (1 - kappa^2 h^2 / 24) <= h.
+    # points are one step apart along the curve, so their chord is h (1 - kappa^2 h^2 / 24) <= h, with
+    # kappa the fitted curve's own curvature at the step's midpoint.
     a, b = 10.0, 3.0
     kappa = a / (a**2 + b**2)
-    fit = fit_curve(_helix_points(a, b, 2.0, 0.5), knot_spacing=4.0)
-    arc, r, *_ = arc_length_samples(fit, step)
+    fit = fit_curve(_helix_points(a, b, 2.0, 0.5), smoothing_mm=4.0)
+    arc, _, r, *_ = arc_length_samples(fit, step)
     h = np.diff(arc)
     assert arc[0] == 0.0
     np.testing.assert_allclose(h, h[0], rtol=1e-12)
     assert h[0] <= step
     assert h[0] > step * (1 - 1.0 / len(h))  # the smallest equal division not exceeding ``step``
     chord = np.linalg.norm(np.diff(r, axis=0), axis=1)
-    np.testing.assert_allclose(chord, h * (1 - kappa**2 * h**2 / 24), rtol=1e-5)
+    _, _, _, m1, m2, m3 = arc_length_samples(fit, step / 2)  # includes every midpoint
+    k_mid = frenet_frame(m1, m2, m3).curvature[1::2]
+    assert np.allclose(k_mid, kappa, rtol=0.1)  # the fit is the helix, up to its end effects
+    np.testing.assert_allclose(chord, h * (1 - k_mid**2 * h**2 / 24), rtol=1e-5)
     np.testing.assert_allclose(r[[0, -1]], fit(np.array([fit.u0, fit.u1])), atol=1e-12)
 
 
 @pytest.mark.parametrize(
-    ("radius", "n", "knots"), [(8.0, 60, 4.0), (8.0, 200, 4.0), (3.0, 40, 2.0), (3.0, 100, 2.0)]
+    ("radius", "n", "knots"), [(8.0, 60, 4.0), (8.0, 200, 4.0), (3.0, 40, 1.5), (3.0, 100, 1.5)]
 )
 def test_closed_ring_fit(radius, n, knots):
     # Circle of radius R: closed fit is periodic (position and derivatives match across the seam),
-    # kappa = 1/R within 0.5 % everywhere, length 2 pi R (METHODS.md "Circle"). Knot spacing at most
-    # 2/3 R: the quintic's approximation error grows like (h/R)^6 (de Boor 1978), and at h > R the
-    # curvature ripple reaches about 1 % all round the loop (not only at the seam).
+    # kappa = 1/R within 0.5 % everywhere, length 2 pi R (METHODS.md "Circle"). Smoothing at most R/2:
+    # the penalty is a low-pass filter of order 6 (third differences), so a circle of circumference
+    # 2 pi R shrinks by about (2 s / (2 pi R))^6, below 1e-4 for s <= R/2 (Eilers and Marx 1996).
     pts = _ring_points(radius, n)
-    fit = fit_curve(pts, knot_spacing=knots, closed=True)
+    fit = fit_curve(pts, smoothing_mm=knots, closed=True)
     assert fit is not None and fit.closed and fit.degree == 5
     ends = np.array([fit.u0, fit.u1])
     # the seam: gaps far below the fit's own approximation error budget (0.1 um on mm data)
@@ -95,7 +104,7 @@ def test_closed_ring_fit(radius, n, knots):
     for nu in (1, 2):
         v0, v1 = fit(ends[:1], nu)[0], fit(ends[1:], nu)[0]
         assert np.linalg.norm(v0 - v1) < 1e-3 * np.linalg.norm(v0)
-    arc, r, d1, d2, d3 = arc_length_samples(fit, 0.7)
+    arc, _, r, d1, d2, d3 = arc_length_samples(fit, 0.7)
     f = frenet_frame(d1, d2, d3)
     np.testing.assert_allclose(f.curvature, 1 / radius, rtol=0.005)
     # one period without repeating the first point: the last step closes the loop
@@ -112,37 +121,37 @@ def test_closed_ring_fit(radius, n, knots):
 def test_closed_fit_starting_point_irrelevant():
     # A ring is the same curve whatever point starts the list: the curvature stays 1/R (0.5 %).
     pts = np.roll(_ring_points(6.0, 80), 17, axis=0)
-    fit = fit_curve(pts, knot_spacing=4.0, closed=True)
-    _, _, d1, d2, d3 = arc_length_samples(fit, 0.5)
+    fit = fit_curve(pts, smoothing_mm=4.0, closed=True)
+    _, _, _, d1, d2, d3 = arc_length_samples(fit, 0.5)
     np.testing.assert_allclose(frenet_frame(d1, d2, d3).curvature, 1 / 6.0, rtol=0.005)
 
 
 def test_three_points_low_degree_interpolates():
-    # Three points: a quadratic (degree 2 < 3, so torsion undefined) through all three points.
+    # Three points: the quadratic through them (effective degree 2 < 3, so torsion undefined).
     pts = np.array([[0.0, 0.0, 0.0], [1.0, 1.0, 0.0], [2.0, 0.0, 1.0]])
-    fit = fit_curve(pts, knot_spacing=4.0)
+    fit = fit_curve(pts, smoothing_mm=4.0)
     assert fit is not None and fit.degree == 2
     u = np.r_[0.0, np.cumsum(np.linalg.norm(np.diff(pts, axis=0), axis=1))]
     assert fit.u0 == 0.0 and fit.u1 == pytest.approx(u[-1])
-    np.testing.assert_allclose(fit(u), pts, atol=1e-12)
-    np.testing.assert_allclose(fit(u, 3), 0.0, atol=1e-12)  # a quadratic has no third derivative
+    np.testing.assert_allclose(fit(u), pts, atol=1e-9)
+    np.testing.assert_allclose(fit(u, 3), 0.0, atol=1e-9)  # a quadratic has no third derivative
 
 
 def test_two_points_straight_segment():
-    # Two points: a degree-1 fit, the straight segment between them.
+    # Two points: the straight segment between them (effective degree 1).
     pts = np.array([[1.0, 2.0, 3.0], [4.0, 6.0, 3.0]])
-    fit = fit_curve(pts, knot_spacing=2.0)
+    fit = fit_curve(pts, smoothing_mm=2.0)
     assert fit is not None and fit.degree == 1
-    np.testing.assert_allclose(fit(np.array([0.0, 2.5, 5.0])), [pts[0], pts.mean(axis=0), pts[1]])
+    np.testing.assert_allclose(fit(np.array([0.0, 2.5, 5.0])), [pts[0], pts.mean(axis=0), pts[1]], atol=1e-9)
 
 
 @pytest.mark.parametrize("closed", [False, True])
 @pytest.mark.parametrize("pts", [np.array([[1.0, 2.0, 3.0]]), np.array([[1.0, 2.0, 3.0], [1.0, 2.0, 3.0]])])
 def test_fewer_than_two_distinct_points_returns_none(pts, closed):
     # Documented: None when fewer than two distinct points remain.
-    assert fit_curve(pts, knot_spacing=2.0, closed=closed) is None
+    assert fit_curve(pts, smoothing_mm=2.0, closed=closed) is None
 
 
 def test_no_points_returns_none():
     # Documented: None when fewer than two distinct points remain (here none at all).
-    assert fit_curve(np.zeros((0, 3)), knot_spacing=2.0) is None
+    assert fit_curve(np.zeros((0, 3)), smoothing_mm=2.0) is None

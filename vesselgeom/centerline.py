@@ -8,7 +8,7 @@ Frenet-Serret frame, curvature, torsion and radius at every sample.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -155,7 +155,7 @@ def _extend_free_ends(
         return fit, np.zeros(2)
     u = np.linspace(lo, hi, max(int(np.ceil((hi - lo) / (0.5 * voxel))), 2) + 1)
     pts = np.concatenate([*heads, fit(u), *tails])
-    refit = fit_curve(pts, knot_spacing=settings.knot_spacing_radii * scale, closed=False)
+    refit = fit_curve(pts, smoothing_mm=settings.smoothing_radii * scale, closed=False)
     return (refit, stubs) if refit is not None else (fit, np.zeros(2))
 
 
@@ -187,7 +187,7 @@ def trace_centerlines(
         core = r[1:-1] if len(r) > 4 else r
         scale = max(float(np.nanmedian(core)) if core.size else 0.0, settings.min_scale_voxels * voxel_mm)
         scales.append(scale)
-        fits.append(fit_curve(b.path, knot_spacing=settings.knot_spacing_radii * scale, closed=b.closed))
+        fits.append(fit_curve(b.path, smoothing_mm=settings.smoothing_radii * scale, closed=b.closed))
 
     for _ in range(settings.recentre_passes):
         us = [(_even_samples(f, voxel_mm) if f is not None else np.zeros(0)) for f in fits]
@@ -208,7 +208,7 @@ def trace_centerlines(
             fits[i] = (
                 fit_curve(
                     new,
-                    knot_spacing=settings.knot_spacing_radii * scales[i],
+                    smoothing_mm=settings.smoothing_radii * scales[i],
                     closed=branches[i].closed,
                 )
                 or fits[i]
@@ -222,9 +222,16 @@ def trace_centerlines(
         ext = np.zeros(2)
         if not b.closed and (b.free_start or b.free_end):
             fit, ext = _extend_free_ends(fit, b, scale, section, boundary, voxel_mm, settings)
-        arc, r, d1, d2, d3 = arc_length_samples(fit, step)
+        arc, _u, r, d1, d2, d3 = arc_length_samples(fit, step)
         floor = settings.curvature_floor_per_voxel / voxel_mm
         frame = frenet_frame(d1, d2, d3, curvature_floor=floor)
+        # torsion from a smoother fit of the same curve, parametrised (to 1e-4) by the same arc length
+        dense = fit(_even_samples(fit, 0.5 * voxel_mm))
+        smooth = fit_curve(dense, smoothing_mm=settings.torsion_smoothing_radii * scale, closed=fit.closed)
+        if smooth is not None:
+            a = np.clip(arc, smooth.u0, smooth.u1)
+            tau = frenet_frame(smooth(a, 1), smooth(a, 2), smooth(a, 3)).torsion
+            frame = replace(frame, torsion=np.where(np.isfinite(frame.torsion), tau, np.nan))
         radius = boundary(r)
         length = arc[-1]
         measured = np.ones(len(arc), bool)

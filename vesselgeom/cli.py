@@ -23,7 +23,7 @@ __all__ = ["main"]
 
 _SETTING_FLAGS = {
     "prune_ratio": float,
-    "knot_spacing_radii": float,
+    "smoothing_radii": float,
     "step_mm": float,
     "min_component_mm3": float,
     "curvature_floor_per_voxel": float,

@@ -97,7 +97,7 @@ def branch_row(
     last = 0 if cl.closed else -1  # a loop ends where it starts
     if cl.degree < 5:
         flags.append("few_points")
-    if measured_len < settings.knot_spacing_radii * cl.scale_mm:
+    if measured_len < settings.smoothing_radii * cl.scale_mm:
         flags.append("short")
     if tau_d.size == 0:
         flags.append("torsion_undefined")

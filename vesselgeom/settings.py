@@ -40,9 +40,15 @@ class Settings:
     recentre_passes : int
         Passes of cross-section recentring (centroid of the mask in the plane normal to the tangent).
         Default 2.
-    knot_spacing_radii : float
-        Knot spacing of the least-squares quintic spline, in units of ``max(radius, min_scale_voxels)``.
-        Default 4.0 (measured: curvature within 1.3 %, torsion within 3.1 % on helices).
+    smoothing_radii : float
+        Smoothing length of the penalised quintic spline that gives the centreline, its frame and its
+        curvature, in units of ``max(radius, min_scale_voxels)`` (the scale); the spline filters out
+        undulations shorter than twice this length. Default 2.5: the largest curvature error over the
+        validation phantoms is then about 1 % (``docs/validation.md``).
+    torsion_smoothing_radii : float
+        Smoothing length of a second, smoother fit of the same points from which torsion is taken
+        (torsion needs the third derivative, whose noise grows fastest as smoothing shrinks). Default
+        5.0: helix torsion within about 3 % at 2-voxel radii (``docs/validation.md``).
     min_scale_voxels : float
         Lower bound, in voxels (mean voxel size), on the scale used for knot spacing and end trimming, so
         thin vessels are still smoothed over several voxels. Default 2.0.
@@ -76,7 +82,8 @@ class Settings:
     min_component_mm3: float | None = None
     prune_ratio: float = 1.5
     recentre_passes: int = 2
-    knot_spacing_radii: float = 3.5
+    smoothing_radii: float = 2.5
+    torsion_smoothing_radii: float = 5.0
     min_scale_voxels: float = 2.0
     step_voxels: float = 0.5
     step_mm: float | None = None
@@ -90,7 +97,8 @@ class Settings:
         positive = [
             "min_component_voxels",
             "prune_ratio",
-            "knot_spacing_radii",
+            "smoothing_radii",
+            "torsion_smoothing_radii",
             "min_scale_voxels",
             "step_voxels",
             "inflection_end_radii",
