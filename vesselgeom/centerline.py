@@ -1,6 +1,6 @@
 """From ordered skeleton paths in world mm to smooth, arc-length parametrised centrelines with their frames.
 
-Per branch: fit a least-squares quintic spline (knot spacing tied to the vessel radius), recentre points
+Per branch: fit a penalised quintic spline (smoothing tied to the vessel radius), recentre points
 sampled along it on the mask's cross-section (batched over all branches of a component), refit, repeat;
 extend terminal ends that thinning retracted; resample at a fixed arc-length step; compute the
 Frenet-Serret frame, curvature, torsion and radius at every sample.
@@ -123,7 +123,7 @@ def _extend_free_ends(
     """Replace the last ``scale`` of each terminal end by a straight stub reaching the axis end.
 
     Thinning stops a round-ended vessel's skeleton short of the axis end, and a spline is least
-    constrained over its last knot span. From the point one scale inside the end, along the tangent
+    constrained over its last smoothing length. From the point one scale inside the end, along the tangent
     there, the mask is followed to where it ends; the axis end is
     placed one local radius short of that (the mask surface of a rounded end lies one radius beyond
     the axis end). Returns the refitted curve and the stub lengths (mm) at the start and the end.

@@ -38,6 +38,7 @@ __all__ = [
     "y_phantom",
     "tree_phantom",
     "random_rotation",
+    "network_phantom",
 ]
 
 Vec = Callable[[np.ndarray], np.ndarray]
@@ -313,6 +314,8 @@ def voxelize_tubes(
         reach = rad / np.min(np.linalg.norm(affine[:3, :3], axis=0)) + 2
         lo = np.maximum(np.floor(idx.min(axis=0) - reach), 0).astype(int)
         hi = np.minimum(np.ceil(idx.max(axis=0) + reach) + 1, shape).astype(int)
+        if np.any(hi <= lo):  # entirely outside the grid
+            continue
         grids = np.meshgrid(*[np.arange(a, b) for a, b in zip(lo, hi, strict=True)], indexing="ij")
         ijk = np.stack([g.ravel() for g in grids], axis=1).astype(float)
         xyz = ijk @ affine[:3, :3].T + affine[:3, 3]
@@ -411,3 +414,68 @@ def _union(curves, radii, spacing, rotation, *, n_junctions: int) -> Phantom:
     mask = voxelize_tubes(polys, radii, affine, shape)
     truth = tuple(curve_truth(c, radius_mm=r) for c, r in zip(curves, radii, strict=True))
     return Phantom(mask, affine, truth, n_junctions, tuple(curves))
+
+
+def network_phantom(
+    shape: tuple[int, int, int] = (128, 128, 128),
+    *,
+    spacing: Sequence[float] = (1.0, 1.0, 1.0),
+    n_trees: int = 8,
+    depth: int = 5,
+    radius_voxels: tuple[float, float] = (1.0, 5.0),
+    seed: int = 0,
+) -> tuple[np.ndarray, np.ndarray]:
+    """A synthetic vascular network filling a box: random trees of gently curved tubes.
+
+    Each tree starts at a random point with a random direction; every segment is a circular arc
+    (curvature up to 1/(8 r)) of length 6-14 radii; children leave at 25-50 degrees with Murray's-law
+    radii (r / 2^(1/3)) until ``depth`` levels or the minimum radius. Segments leaving the box are kept
+    (they are clipped by the grid, as a field of view clips real vessels).
+
+    Returns
+    -------
+    mask : bool array of ``shape``
+    affine : (4, 4) float array, axis-aligned with the given spacing
+    """
+    rng = np.random.default_rng(seed)
+    sp = np.asarray(spacing, float)
+    affine = np.diag([*sp, 1.0])
+    extent = np.asarray(shape) * sp
+    polys: list[np.ndarray] = []
+    radii: list[float] = []
+    vox = float(sp.min())
+    r_max, r_min = radius_voxels[1] * vox, radius_voxels[0] * vox
+
+    def arc(start, direction, length, rad):
+        # circular arc in a random plane containing the direction
+        normal = np.cross(direction, rng.normal(size=3))
+        normal /= np.linalg.norm(normal)
+        kappa = rng.uniform(0.0, 1.0 / (8 * rad))
+        s = np.arange(0.0, length + 0.1 * vox, 0.1 * vox)
+        if kappa < 1e-9:
+            return start + s[:, None] * direction, direction
+        th = kappa * s
+        pts = start + (np.sin(th)[:, None] * direction + (1 - np.cos(th))[:, None] * normal) / kappa
+        end_dir = np.cos(th[-1]) * direction + np.sin(th[-1]) * normal
+        return pts, end_dir
+
+    def grow(start, direction, rad, level):
+        pts, end_dir = arc(start, direction, rng.uniform(6, 14) * rad, rad)
+        polys.append(pts)
+        radii.append(rad)
+        child = rad / 2 ** (1 / 3)
+        if level + 1 >= depth or child < r_min:
+            return
+        perp = np.cross(end_dir, rng.normal(size=3))
+        perp /= np.linalg.norm(perp)
+        for sign in (1, -1):
+            ang = np.deg2rad(rng.uniform(25, 50))
+            d = np.cos(ang) * end_dir + sign * np.sin(ang) * perp
+            grow(pts[-1], d / np.linalg.norm(d), child, level + 1)
+
+    for _ in range(n_trees):
+        start = rng.uniform(0.15, 0.85, size=3) * extent
+        direction = rng.normal(size=3)
+        grow(start, direction / np.linalg.norm(direction), r_max, 0)
+    mask = voxelize_tubes(polys, radii, affine, tuple(int(v) for v in shape))
+    return mask, affine

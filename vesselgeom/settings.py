@@ -50,7 +50,7 @@ class Settings:
         (torsion needs the third derivative, whose noise grows fastest as smoothing shrinks). Default
         5.0: helix torsion within about 3 % at 2-voxel radii (``docs/validation.md``).
     min_scale_voxels : float
-        Lower bound, in voxels (mean voxel size), on the scale used for knot spacing and end trimming, so
+        Lower bound, in voxels (mean voxel size), on the scale used for smoothing and end trimming, so
         thin vessels are still smoothed over several voxels. Default 2.0.
     step_voxels : float or None
         Arc-length resampling step of the output profiles, in voxels (mean voxel size). Default 0.5.
