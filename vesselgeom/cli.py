@@ -1,18 +1,21 @@
-"""Command line: ``vesselgeom analyze MASK --out DIR`` and friends.
+"""Command line: ``vesselgeom analyze | batch | compare | demo``.
 
-Thin by design: parse arguments, call the package, print one-line messages. Errors on bad input print
-``vesselgeom: error: <file>: <problem>`` and exit with status 2, without a traceback and without writing
-any output.
+Thin by design: parse arguments, call the package, print short messages. Bad input prints
+``vesselgeom: error: <file>: <problem>`` on one line and exits with status 2, without a traceback and
+without writing any output.
 
-Exit status: 0 success; 2 bad input or usage; 1 an unexpected internal error (a bug: please report it).
+Exit status: 0 success; 1 ``batch``/``demo`` finished but at least one subject failed (see status.csv),
+or an unexpected internal error (a bug: please report it); 2 bad input or usage.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import warnings
 from collections.abc import Sequence
+from pathlib import Path
 
 from . import __version__
 from .errors import VesselgeomError, VesselgeomWarning
@@ -24,6 +27,7 @@ __all__ = ["main"]
 _SETTING_FLAGS = {
     "prune_ratio": float,
     "smoothing_radii": float,
+    "torsion_smoothing_radii": float,
     "step_mm": float,
     "min_component_mm3": float,
     "curvature_floor_per_voxel": float,
@@ -31,10 +35,31 @@ _SETTING_FLAGS = {
 }
 
 
+def _add_settings(p: argparse.ArgumentParser) -> None:
+    sel = p.add_mutually_exclusive_group()
+    sel.add_argument("--label", type=int, help="analyse only this label of an integer label map")
+    sel.add_argument(
+        "--threshold", type=float, help="foreground is value >= T (required for probability maps)"
+    )
+    p.add_argument("--keep-holes", action="store_true", help="do not fill enclosed cavities")
+    defaults = Settings()
+    for name, typ in _SETTING_FLAGS.items():
+        p.add_argument(
+            f"--{name.replace('_', '-')}",
+            type=typ,
+            default=None,
+            help=f"see Settings.{name} (default {getattr(defaults, name)})",
+        )
+
+
+def _settings(args: argparse.Namespace) -> Settings:
+    overrides = {k: getattr(args, k) for k in _SETTING_FLAGS if getattr(args, k) is not None}
+    return Settings(label=args.label, threshold=args.threshold, fill_holes=not args.keep_holes, **overrides)
+
+
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
-        prog="vesselgeom",
-        description="Centreline geometry of 3D vessel masks, in mm. " + CAUTION,
+        prog="vesselgeom", description="Centreline geometry of 3D vessel masks, in mm. " + CAUTION
     )
     p.add_argument("--version", action="version", version=f"vesselgeom {__version__}")
     sub = p.add_subparsers(dest="command", required=True)
@@ -42,32 +67,33 @@ def _parser() -> argparse.ArgumentParser:
     a = sub.add_parser("analyze", help="measure every branch of one mask (NIfTI)")
     a.add_argument("mask", help="mask file (.nii or .nii.gz)")
     a.add_argument("--out", required=True, help="output folder (replaced atomically)")
-    sel = a.add_mutually_exclusive_group()
-    sel.add_argument("--label", type=int, help="analyse only this label of an integer label map")
-    sel.add_argument(
-        "--threshold", type=float, help="foreground is value >= T (required for probability maps)"
-    )
-    a.add_argument("--keep-holes", action="store_true", help="do not fill enclosed cavities")
-    for name, typ in _SETTING_FLAGS.items():
-        default = getattr(Settings(), name)
-        a.add_argument(
-            f"--{name.replace('_', '-')}",
-            type=typ,
-            default=None,
-            help=f"see Settings.{name} (default {default})",
-        )
+    _add_settings(a)
     a.add_argument("--quiet", action="store_true", help="print nothing but errors")
+
+    b = sub.add_parser("batch", help="analyse every subject of a cohort (manifest CSV or folder)")
+    b.add_argument("source", help="manifest.csv (columns subject, group, mask) or a folder of masks")
+    b.add_argument("--out", required=True, help="batch folder (one sub-folder per subject)")
+    b.add_argument("--jobs", type=int, default=None, help="worker processes (default: all cores)")
+    b.add_argument("--glob", default="*.nii*", help="file pattern in folder mode (default *.nii*)")
+    _add_settings(b)
+
+    c = sub.add_parser("compare", help="compare groups of subjects in a batch folder")
+    c.add_argument("batch", help="batch folder written by 'vesselgeom batch'")
+    c.add_argument("--by", default="group", help="manifest column that defines the groups")
+    c.add_argument("--out", required=True, help="comparison folder (comparison.csv, figures/)")
+    c.add_argument("--metrics", nargs="+", help="columns of cohort_subjects.csv (default: main indices)")
+    c.add_argument("--mixed", action="store_true", help="also fit mixed models (needs statsmodels)")
+
+    d = sub.add_parser("demo", help="run batch and compare on the built-in synthetic cohort")
+    d.add_argument("--out", default="vesselgeom-demo", help="output folder (default vesselgeom-demo)")
+    d.add_argument("--jobs", type=int, default=None, help="worker processes (default: all cores)")
     return p
 
 
 def _run_analyze(args: argparse.Namespace) -> int:
-    overrides = {k: getattr(args, k) for k in _SETTING_FLAGS if getattr(args, k) is not None}
-    settings = Settings(
-        label=args.label, threshold=args.threshold, fill_holes=not args.keep_holes, **overrides
-    )
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", VesselgeomWarning)
-        result = analyze(args.mask, settings=settings)
+        result = analyze(args.mask, settings=_settings(args))
         out = result.write(args.out)
     if not args.quiet:
         for w in caught:
@@ -82,24 +108,77 @@ def _run_analyze(args: argparse.Namespace) -> int:
     return 0
 
 
+def _batch(source: str, out: str, settings: Settings, jobs: int | None, glob: str = "*.nii*") -> int:
+    from .cohort.batch import run_batch
+    from .cohort.manifest import manifest_from_folder, read_manifest
+
+    subjects = manifest_from_folder(source, pattern=glob) if os.path.isdir(source) else read_manifest(source)
+    status = run_batch(
+        subjects,
+        out,
+        settings=settings,
+        jobs=jobs,
+        log=lambda m: print(f"vesselgeom: failed: {m}", file=sys.stderr),
+    )
+    counts = status["status"].value_counts()
+    print(
+        f"{len(status)} subjects: {counts.get('ok', 0)} analysed, {counts.get('skipped', 0)} up to date, "
+        f"{counts.get('failed', 0)} failed -> {Path(out) / 'status.csv'}"
+    )
+    return 1 if counts.get("failed", 0) else 0
+
+
+def _compare(batch: str, out: str, by: str, metrics, mixed: bool) -> None:
+    from .cohort.compare import compare
+
+    table, notes = compare(batch, by=by, metrics=metrics, out_dir=out, mixed=mixed)
+    for n in notes:
+        print(f"vesselgeom: warning: {n}", file=sys.stderr)
+    cols = ["metric", "groups", "medians", "cliffs_delta", "p", "q"]
+    with_shift = table.assign(cliffs_delta=table["cliffs_delta"].round(2))
+    print(with_shift[cols].to_string(index=False, float_format=lambda v: f"{v:.3g}"))
+    print(f"-> {Path(out) / 'comparison.csv'} and {Path(out) / 'figures'}/")
+
+
+def _run_demo(args: argparse.Namespace) -> int:
+    from .demo import find_or_make_cohort
+
+    out = Path(args.out)
+    manifest, made = find_or_make_cohort(out)
+    where = "generated" if made else "found"
+    print(f"demo cohort ({where}): {manifest} (invented study; synthetic masks)")
+    code = _batch(str(manifest), str(out / "batch"), Settings(), args.jobs)
+    _compare(str(out / "batch"), str(out / "comparison"), "group", None, False)
+    print(f"per-subject tables: {out / 'batch'}/<subject>/branches.csv; pooled: {out / 'batch'}/cohort_*.csv")
+    print(CAUTION)
+    return code
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``vesselgeom`` command; returns the exit status."""
     args = _parser().parse_args(argv)
     try:
         if args.command == "analyze":
             return _run_analyze(args)
+        if args.command == "batch":
+            code = _batch(args.source, args.out, _settings(args), args.jobs, args.glob)
+            print(CAUTION)
+            return code
+        if args.command == "compare":
+            _compare(args.batch, args.out, args.by, args.metrics, args.mixed)
+            print(CAUTION)
+            return 0
+        if args.command == "demo":
+            return _run_demo(args)
     except (VesselgeomError, ValueError) as exc:
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         if isinstance(exc, VesselgeomError) or msg.startswith("settings:"):
             print(f"vesselgeom: error: {msg}", file=sys.stderr)
             return 2
-        print(
-            f"vesselgeom: internal error ({type(exc).__name__}: {msg}); please report it",
-            file=sys.stderr,
-        )
+        print(f"vesselgeom: internal error ({type(exc).__name__}: {msg}); please report it", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
-        print("vesselgeom: interrupted; no output written", file=sys.stderr)
+        print("vesselgeom: interrupted; finished subjects are kept, no half-written output", file=sys.stderr)
         return 130
     return 2
 

@@ -423,14 +423,17 @@ def network_phantom(
     n_trees: int = 8,
     depth: int = 5,
     radius_voxels: tuple[float, float] = (1.0, 5.0),
+    undulation_radii: float = 0.0,
     seed: int = 0,
 ) -> tuple[np.ndarray, np.ndarray]:
     """A synthetic vascular network filling a box: random trees of gently curved tubes.
 
     Each tree starts at a random point with a random direction; every segment is a circular arc
     (curvature up to 1/(8 r)) of length 6-14 radii; children leave at 25-50 degrees with Murray's-law
-    radii (r / 2^(1/3)) until ``depth`` levels or the minimum radius. Segments leaving the box are kept
-    (they are clipped by the grid, as a field of view clips real vessels).
+    radii (r / 2^(1/3)) until ``depth`` levels or the minimum radius. ``undulation_radii`` > 0 adds a
+    lateral sine wave of that amplitude (in radii) and a wavelength of 12 radii to every segment, making
+    the network more tortuous without changing its radii. Segments leaving the box are kept (they are
+    clipped by the grid, as a field of view clips real vessels).
 
     Returns
     -------
@@ -452,11 +455,15 @@ def network_phantom(
         normal /= np.linalg.norm(normal)
         kappa = rng.uniform(0.0, 1.0 / (8 * rad))
         s = np.arange(0.0, length + 0.1 * vox, 0.1 * vox)
-        if kappa < 1e-9:
-            return start + s[:, None] * direction, direction
+        kappa = max(kappa, 1e-6)
         th = kappa * s
         pts = start + (np.sin(th)[:, None] * direction + (1 - np.cos(th))[:, None] * normal) / kappa
         end_dir = np.cos(th[-1]) * direction + np.sin(th[-1]) * normal
+        if undulation_radii > 0:  # whole periods, so the segment still ends where the arc ends
+            periods = max(1, int(round(length / (12 * rad))))
+            wave = undulation_radii * rad * np.sin(2 * np.pi * periods * s / s[-1])
+            side = np.cross(np.sin(th)[:, None] * normal + np.cos(th)[:, None] * direction, normal)
+            pts = pts + wave[:, None] * side
         return pts, end_dir
 
     def grow(start, direction, rad, level):

@@ -14,7 +14,7 @@ from vesselgeom.io.affine import (
     world_to_index,
 )
 from vesselgeom.io.atomic import atomic_output_dir, atomic_write_text
-from vesselgeom.io.nifti import load_nifti
+from vesselgeom.io.nifti import file_sha256, load_nifti
 from vesselgeom.io.volume import INPUT_UNITS, Volume, select_foreground, volume_from_array
 
 __all__ = [
@@ -25,6 +25,7 @@ __all__ = [
     "atomic_write_text",
     "check_spacing",
     "index_to_world",
+    "file_sha256",
     "load_nifti",
     "orientation",
     "select_foreground",

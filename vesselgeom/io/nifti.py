@@ -21,7 +21,7 @@ from vesselgeom.errors import AffineError, InputError
 from vesselgeom.io.affine import _affine_problem, affine_from_spacing, check_spacing
 from vesselgeom.io.volume import Volume, _build_volume, _squeeze_shape
 
-__all__ = ["load_nifti"]
+__all__ = ["load_nifti", "file_sha256"]
 
 #: NIfTI spatial unit label (nibabel) -> (Volume.input_units, factor to mm).
 _UNITS_TO_MM = {
@@ -55,7 +55,10 @@ def _reason(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {first}" if first else type(exc).__name__
 
 
-def _file_sha256(path: Path, *, source: str) -> str:
+def file_sha256(path: str | os.PathLike[str], *, source: str | None = None) -> str:
+    """SHA-256 hex digest of a file's bytes, read in chunks (the input hash recorded in run.json)."""
+    path = Path(path)
+    source = str(path) if source is None else source
     digest = hashlib.sha256()
     try:
         with path.open("rb") as handle:
@@ -195,7 +198,7 @@ def load_nifti(
         label=label,
         threshold=threshold,
         source=source,
-        sha256=_file_sha256(file, source=source),
+        sha256=file_sha256(file, source=source),
         input_units=input_units,
         dtype_in=np.dtype(img.get_data_dtype()).name,
         warnings=found,
