@@ -171,3 +171,15 @@ def test_demo_runs_from_a_fresh_folder(tmp_path):
     table = pd.read_csv(tmp_path / "demo" / "comparison" / "comparison.csv").set_index("metric")
     assert table.loc["mean_curvature_per_mm__lw_mean", "q"] < 0.05
     assert table.loc["mean_radius_mm__lw_mean", "q"] > 0.05
+
+
+def test_mixed_model_columns(tmp_path):
+    # Optional mixed-effects model (statsmodels MixedLM, random intercept per subject).
+    pytest.importorskip("statsmodels")
+    subjects = read_manifest(_cohort(tmp_path, n_per_group=3))
+    run_batch(subjects, tmp_path / "b", jobs=2)
+    table, _ = compare(tmp_path / "b", by="group", metrics=["mean_curvature_per_mm__lw_mean"], mixed=True)
+    row = table.iloc[0]
+    assert np.isfinite(row["mixed_coef"]) and 0 <= row["mixed_p"] <= 1
+    # 'flat' minus 'wavy': the wavy group is more curved, so the coefficient is negative
+    assert row["mixed_coef"] < 0
