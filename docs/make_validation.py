@@ -114,7 +114,7 @@ not reported is {s.curvature_floor_per_voxel} per voxel.
   very different tortuosity: weigh small radius differences between groups that differ in tortuosity
   accordingly.
 - Accuracy is validated for radii of at least 2 voxels (of the coarsest axis); branches whose mean
-  radius is below that carry the flag `radius_below_2_voxels`. Junction regions distort the centreline
+  radius is below that carry the flag `radius_below_validated`. Junction regions distort the centreline
   for about a radius; summaries leave out one smoothing scale at each end.
 
 Research use only; not a medical device.

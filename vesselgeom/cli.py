@@ -68,6 +68,10 @@ def _parser() -> argparse.ArgumentParser:
     a.add_argument("mask", help="mask file (.nii or .nii.gz)")
     a.add_argument("--out", required=True, help="output folder (replaced atomically)")
     _add_settings(a)
+    a.add_argument(
+        "--no-exports", action="store_true", help="skip centerlines.vtp, branch_labels.nii.gz and qc.png"
+    )
+    a.add_argument("--plots", action="store_true", help="also write profiles/: one figure per branch")
     a.add_argument("--quiet", action="store_true", help="print nothing but errors")
 
     b = sub.add_parser("batch", help="analyse every subject of a cohort (manifest CSV or folder)")
@@ -94,7 +98,7 @@ def _run_analyze(args: argparse.Namespace) -> int:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", VesselgeomWarning)
         result = analyze(args.mask, settings=_settings(args))
-        out = result.write(args.out)
+        out = result.write(args.out, exports=not args.no_exports, plots=args.plots)
     if not args.quiet:
         for w in caught:
             if issubclass(w.category, VesselgeomWarning):

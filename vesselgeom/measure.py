@@ -101,8 +101,9 @@ def branch_row(
         flags.append("short")
     if tau_d.size == 0:
         flags.append("torsion_undefined")
-    if np.isfinite(r_mean) and r_mean < 2.0 * (coarsest_voxel_mm or voxel_mm):
-        flags.append("radius_below_2_voxels")  # below the validated resolution (docs/validation.md)
+    limit = settings.min_validated_radius_voxels * (coarsest_voxel_mm or voxel_mm)
+    if np.isfinite(r_mean) and r_mean < limit:
+        flags.append("radius_below_validated")  # below the validated resolution (docs/validation.md)
     row.update(
         length_mm=length,
         chord_mm=chord,

@@ -22,10 +22,12 @@ from . import __version__
 from .centerline import BranchInput, trace_centerlines
 from .crosssection import CrossSection
 from .errors import InputError, VesselgeomWarning
+from .exports import branch_label_volume, write_label_volume, write_vtp
 from .graph import build_graph, prune_spurs
 from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
 from .io.affine import voxel_sizes
 from .measure import BranchContext, branch_row, junction_row, point_columns
+from .qc import profile_figures, qc_figure
 from .radius import BoundaryDistance
 from .settings import Settings
 from .skeleton import iter_components, thin
@@ -62,15 +64,35 @@ class Result:
     points: pd.DataFrame
     junctions: pd.DataFrame
     run: dict[str, Any] = field(default_factory=dict)
+    volume: Volume | None = field(default=None, repr=False)
 
-    def write(self, out_dir: str | os.PathLike[str]) -> Path:
+    def write(self, out_dir: str | os.PathLike[str], *, exports: bool = True, plots: bool = False) -> Path:
         """Write the tables, ``columns.json`` and ``run.json`` into ``out_dir``, atomically.
 
-        The folder appears complete or not at all: files are written into a temporary sibling folder
-        that replaces ``out_dir`` at the end.
+        With ``exports`` (default) also ``centerlines.vtp``, ``branch_labels.nii.gz`` and ``qc.png``;
+        with ``plots`` a ``profiles/`` folder with one figure per branch. The folder appears complete
+        or not at all: files are written into a temporary sibling folder that replaces ``out_dir``.
         """
         out = Path(out_dir)
         with atomic_output_dir(out) as tmp:
+            if exports:
+                write_vtp(self.points, self.branches, tmp / "centerlines.vtp")
+                if self.volume is not None:
+                    labels = branch_label_volume(self.volume.mask, self.volume.affine, self.points)
+                    write_label_volume(
+                        labels, self.volume.affine, tmp / "branch_labels.nii.gz", source=self.volume.source
+                    )
+                    qc_figure(
+                        self.volume.mask,
+                        self.volume.affine,
+                        self.points,
+                        self.branches,
+                        self.junctions,
+                        tmp / "qc.png",
+                        title=Path(self.volume.source).name,
+                    )
+            if plots:
+                profile_figures(self.points, tmp / "profiles")
             write_csv(self.branches, tmp / "branches.csv", schema=BRANCH_COLUMNS)
             write_csv(self.points, tmp / "points.csv", schema=POINT_COLUMNS)
             write_csv(self.junctions, tmp / "junctions.csv", schema=JUNCTION_COLUMNS)
@@ -290,13 +312,15 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             "step_mm": settings.step_mm or settings.step_voxels * voxel_mm,
             "curvature_floor_per_mm": settings.curvature_floor_per_voxel / voxel_mm,
             "min_component_voxels": float(min_voxels),
+            # accuracy shown in docs/validation.md holds from this radius up; smaller ones are flagged
+            "min_validated_radius_mm": settings.min_validated_radius_voxels * float(spacing.max()),
         },
         "counts": {"branches": len(branches), "junctions": len(junctions), "points": len(points)},
         "timings_seconds": {k: round(v, 3) for k, v in timings.items()},
         "warnings": notes,
         "environment": {"python": platform.python_version(), "numpy": np.__version__},
     }
-    return Result(branches, points, junctions, run)
+    return Result(branches, points, junctions, run, volume)
 
 
 def _columns(rows: list[dict], schema) -> dict[str, list] | None:

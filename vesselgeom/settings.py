@@ -70,6 +70,10 @@ class Settings:
         maxima and the binormals at those maxima point in opposite directions. Default 0.5.
     inflection_end_radii : float
         Minima within this many radii of a branch end are not counted. Default 2.0.
+    min_validated_radius_voxels : float
+        Branches whose mean radius is below this many voxels (of the coarsest voxel axis) get the flag
+        ``radius_below_validated``: below it the accuracy in ``docs/validation.md`` has not been shown.
+        Default 2.0.
     junction_angle_radii : float
         Directions of branches leaving a junction are their tangents this many smoothing scales (about
         a radius) along each branch from the junction. Default 2.0 (METHODS: tangents 1-3 radii away).
@@ -92,6 +96,7 @@ class Settings:
     inflection_dip: float = 0.5
     inflection_end_radii: float = 2.0
     junction_angle_radii: float = 2.0
+    min_validated_radius_voxels: float = 2.0
 
     def __post_init__(self) -> None:
         positive = [
