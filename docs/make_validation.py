@@ -14,20 +14,9 @@ import pandas as pd
 
 import vesselgeom
 from vesselgeom.settings import Settings
-from vesselgeom.validation import run_cases, standard_cases
+from vesselgeom.validation import run_cases, standard_cases, summarise, write_summary_json
 
 OUT = Path(__file__).resolve().parent / "validation.md"
-
-
-def _fmt_pct(x: pd.Series) -> str:
-    x = x.dropna()
-    if x.empty:
-        return "-"
-    return f"{100 * np.max(np.abs(x)):.1f} ({100 * np.median(np.abs(x)):.1f})"
-
-
-def _range(x: pd.Series) -> str:
-    return f"{x.min():+.2f} .. {x.max():+.2f}"
 
 
 def _markdown(df: pd.DataFrame) -> str:
@@ -45,25 +34,7 @@ def main() -> None:
         seeds=(0, 1, 2),
     )
     df = run_cases(cases)
-    rows = []
-    for (curve, rv, an), g in df.groupby(["curve", "radius_voxels", "anisotropy"]):
-        rows.append(
-            {
-                "phantom": curve,
-                "radius (voxels)": f"{rv:g}",
-                "anisotropy": f"{an:g}:1",
-                "cases": len(g),
-                "branches ok": f"{(g.n_branches == 1).sum()}/{len(g)}",
-                "curvature % max (median)": _fmt_pct(g.curvature_err),
-                "curvature vs whole curve %": _fmt_pct(g.curvature_err_whole),
-                "torsion % max (median)": _fmt_pct(g.torsion_err),
-                "length error / radius, range": _range(g.length_err_radii),
-                "DM % max (median)": _fmt_pct(g.dm_err),
-                "inflections exact": f"{(g.inflections == g.inflections_true).sum()}/{len(g)}",
-                "radius bias (voxels), range": _range(g.radius_err_voxels),
-            }
-        )
-    table = pd.DataFrame(rows)
+    table = summarise(df)
     straight = df[df.curve == "straight"]["curvature_abs_per_mm"] * df[df.curve == "straight"]["spacing"].map(
         lambda s: np.mean([float(v) for v in s.split("x")])
     )
@@ -121,6 +92,7 @@ Research use only; not a medical device.
 """
     OUT.write_text(text)
     print(f"wrote {OUT}")
+    print(f"wrote {write_summary_json(df, table)}")
 
 
 if __name__ == "__main__":

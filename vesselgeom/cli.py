@@ -88,6 +88,15 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--metrics", nargs="+", help="columns of cohort_subjects.csv (default: main indices)")
     c.add_argument("--mixed", action="store_true", help="also fit mixed models (needs statsmodels)")
 
+    r = sub.add_parser("report", help="write one self-contained HTML report for a subject or batch folder")
+    r.add_argument("folder", help="output folder of analyze, or a batch folder")
+    r.add_argument("--out", help="HTML file (default FOLDER/report.html)")
+    r.add_argument("--comparison", help="comparison folder to include (batch reports)")
+
+    acc = sub.add_parser("accuracy", help="expected errors at a voxel size and vessel radius (phantoms)")
+    acc.add_argument("--spacing", nargs=3, type=float, required=True, metavar=("SX", "SY", "SZ"))
+    acc.add_argument("--radius", type=float, required=True, help="vessel radius in mm")
+
     d = sub.add_parser("demo", help="run batch and compare on the built-in synthetic cohort")
     d.add_argument("--out", default="vesselgeom-demo", help="output folder (default vesselgeom-demo)")
     d.add_argument("--jobs", type=int, default=None, help="worker processes (default: all cores)")
@@ -144,6 +153,28 @@ def _compare(batch: str, out: str, by: str, metrics, mixed: bool) -> None:
     print(f"-> {Path(out) / 'comparison.csv'} and {Path(out) / 'figures'}/")
 
 
+def _run_accuracy(args: argparse.Namespace) -> int:
+    from .validation import accuracy, statement, summarise
+
+    spacing = args.spacing
+    if min(spacing) <= 0 or args.radius <= 0:
+        raise VesselgeomError("accuracy: spacing and radius must be positive")
+    rv = args.radius / max(spacing)
+    print(
+        f"running the phantom family at voxel size {spacing} mm, radius {args.radius} mm ({rv:.2g} voxels)..."
+    )
+    df = accuracy(spacing, args.radius)
+    table = summarise(df).drop(columns=["radius (voxels)", "anisotropy"])
+    print(table.to_string(index=False))
+    print(statement(df, source="this run"))
+    limit = Settings().min_validated_radius_voxels
+    if rv < limit:
+        print(f"note: {rv:.2g} voxels is below {limit:g} voxels, where validated accuracy starts;")
+        print("      analyze flags such branches radius_below_validated")
+    print(CAUTION)
+    return 0
+
+
 def _run_demo(args: argparse.Namespace) -> int:
     from .demo import find_or_make_cohort
 
@@ -174,6 +205,15 @@ def main(argv: Sequence[str] | None = None) -> int:
             return 0
         if args.command == "demo":
             return _run_demo(args)
+        if args.command == "accuracy":
+            return _run_accuracy(args)
+        if args.command == "report":
+            from .report import write_report
+
+            path = write_report(args.folder, out=args.out, comparison=args.comparison)
+            print(f"report -> {path}")
+            print(CAUTION)
+            return 0
     except (VesselgeomError, ValueError) as exc:
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         if isinstance(exc, VesselgeomError) or msg.startswith("settings:"):
