@@ -16,7 +16,7 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
-__all__ = ["Node", "Branch", "SkeletonGraph", "build_graph", "prune_spurs"]
+__all__ = ["Node", "Branch", "SkeletonGraph", "build_graph", "build_graph_from_coords", "prune_spurs"]
 
 # the 13 offsets with a positive first non-zero entry: each 26-neighbour pair is seen once
 _HALF_OFFSETS = (
@@ -122,12 +122,22 @@ def build_graph(skeleton: np.ndarray) -> SkeletonGraph:
         Node ids are 0-based and assigned in raster order of each node's first voxel: end nodes and junction
         clusters share one numbering. Branches are ordered by their first voxel in raster order.
     """
-    coords = np.argwhere(skeleton)
+    return build_graph_from_coords(np.argwhere(skeleton), skeleton.shape)
+
+
+def build_graph_from_coords(coords: np.ndarray, shape: tuple[int, ...]) -> SkeletonGraph:
+    """:func:`build_graph` from skeleton voxel indices, (n, 3) int in raster order, within ``shape``.
+
+    For skeletons too large to hold as a dense array (chunked processing): only the coordinates are used.
+    """
+    coords = np.asarray(coords, dtype=np.int64).reshape(-1, 3)
+    order = np.lexsort(coords.T[::-1])  # raster order, as np.argwhere gives
+    coords = coords[order]
     n = len(coords)
     graph = SkeletonGraph()
     if n == 0:
         return graph
-    pairs = _neighbour_pairs(coords, skeleton.shape)
+    pairs = _neighbour_pairs(coords, shape)
     deg = np.bincount(pairs.ravel(), minlength=n)
     is_junc = deg >= 3
     is_chain = (deg == 1) | (deg == 2)
