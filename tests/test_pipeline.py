@@ -137,6 +137,9 @@ def test_tree_counts_and_outputs(tmp_path):
         "junctions.csv",
         "columns.json",
         "run.json",
+        "centerlines.vtp",
+        "branch_labels.nii.gz",
+        "qc.png",
     }
 
 
@@ -149,6 +152,7 @@ def test_mask_without_branches_gives_empty_tables(tmp_path):
     assert len(res.branches) == 0 and list(res.branches.columns)[0] == "branch_id"
     out = res.write(tmp_path / "empty")
     assert (out / "branches.csv").read_text().startswith("branch_id,")
+    assert (out / "centerlines.vtp").exists() and (out / "qc.png").exists()
     assert len((out / "branches.csv").read_text().splitlines()) == 1
 
 

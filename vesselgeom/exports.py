@@ -48,7 +48,7 @@ def write_vtp(points: pd.DataFrame, branches: pd.DataFrame, path: str | os.PathL
     order = np.argsort(ids, kind="stable")
     ids = ids[order]
     starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]]) if len(ids) else np.zeros(0, int)
-    ends = np.r_[starts[1:], len(ids)]
+    ends = np.r_[starts[1:], len(ids)] if len(ids) else np.zeros(0, int)
     connectivity, offsets, cell_ids = [], [], []
     count = 0
     for s, e in zip(starts, ends, strict=True):
