@@ -221,6 +221,9 @@ def main(argv: Sequence[str] | None = None) -> int:
             return 2
         print(f"vesselgeom: internal error ({type(exc).__name__}: {msg}); please report it", file=sys.stderr)
         return 1
+    except BrokenPipeError:  # output piped into e.g. `head`: stop quietly
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print("vesselgeom: interrupted; finished subjects are kept, no half-written output", file=sys.stderr)
         return 130
