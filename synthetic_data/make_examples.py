@@ -18,11 +18,14 @@ HERE = Path(__file__).resolve().parent
 
 
 def example_tree() -> tuple[np.ndarray, np.ndarray]:
-    """A depth-3 tree (7 branches) and a separate coiled vessel, 0.4 x 0.4 x 0.6 mm voxels."""
-    tree = P.tree_phantom(3, root_radius_mm=1.6, root_length_mm=16.0, seed=3)
+    """A depth-3 tree (7 branches) and a separate coiled vessel, 0.4 x 0.4 x 0.6 mm voxels.
+
+    Radii (1.26-2.0 mm) are at least 2 voxels of the coarsest axis, the validated range.
+    """
+    tree = P.tree_phantom(3, root_radius_mm=2.0, root_length_mm=16.0, seed=3)
     coil = P.sample_curve(P.helix(4.0, 1.5, turns=1.5), 0.04) + np.array([14.0, 0.0, 4.0])
     polys = [P.sample_curve(c, 0.04) for c in tree.curves] + [coil]
-    radii = [t.radius_mm for t in tree.branches] + [1.0]
+    radii = [t.radius_mm for t in tree.branches] + [1.3]
     rot = P.random_rotation(11)
     affine, shape = P.make_grid_affine(
         np.concatenate(polys), spacing=(0.4, 0.4, 0.6), rotation=rot, margin_mm=3.0

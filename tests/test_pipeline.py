@@ -172,3 +172,15 @@ def test_run_json_records_provenance(tmp_path):
     assert len(run["input"]["sha256"]) == 64
     assert "Research use only" in run["caution"]
     assert set(run["timings_seconds"]) >= {"thin", "graph", "trace"}
+
+
+def test_edge_flag_marks_only_branches_cut_by_the_field_of_view():
+    # A Y whose parent arm is cut by the image face: only that branch is truncated.
+    ph = P.y_phantom(2.0, spacing=(0.5, 0.5, 0.5))
+    # the parent arm runs towards -x (the first index axis here): cut the volume 10 mm into it
+    cut = int(round(10.0 / 0.5))
+    res = vg.analyze(ph.mask[cut:], affine=ph.affine)
+    flagged = res.branches["flags"].str.contains("touches_image_edge")
+    assert len(res.branches) == 3 and flagged.sum() == 1
+    parent = res.branches.loc[flagged].iloc[0]
+    assert min(parent["start_x_mm"], parent["end_x_mm"]) < -15.0  # the arm towards -x

@@ -184,6 +184,10 @@ def _run_demo(args: argparse.Namespace) -> int:
     print(f"demo cohort ({where}): {manifest} (invented study; synthetic masks)")
     code = _batch(str(manifest), str(out / "batch"), Settings(), args.jobs)
     _compare(str(out / "batch"), str(out / "comparison"), "group", None, False)
+    from .report import write_report
+
+    report = write_report(out / "batch", comparison=out / "comparison")
+    print(f"report: {report}")
     print(f"per-subject tables: {out / 'batch'}/<subject>/branches.csv; pooled: {out / 'batch'}/cohort_*.csv")
     print(CAUTION)
     return code

@@ -72,12 +72,12 @@ def make_cohort(folder: str | os.PathLike[str], *, seed: int = 2026) -> Path:
 
 
 def find_or_make_cohort(out_dir: Path) -> tuple[Path, bool]:
-    """The committed demo manifest when run from a source checkout, else a fresh copy in out_dir/data.
+    """The committed demo manifest of this source checkout, else an identical fresh copy in out_dir/data.
 
-    Returns (manifest path, whether it was generated now).
+    Only the checkout the package itself lives in is looked at (an editable install); an installed
+    package regenerates the cohort with the same seed. Returns (manifest path, whether generated now).
     """
     here = Path(__file__).resolve().parent.parent / "synthetic_data" / "cohort" / "manifest.csv"
-    for candidate in (Path.cwd() / "synthetic_data" / "cohort" / "manifest.csv", here):
-        if candidate.is_file():
-            return candidate, False
+    if here.is_file():
+        return here, False
     return make_cohort(out_dir / "data"), True

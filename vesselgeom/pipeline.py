@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
+from .caution import CAUTION
 from .centerline import BranchInput, trace_centerlines
 from .crosssection import CrossSection
 from .errors import InputError, VesselgeomWarning
@@ -41,11 +42,6 @@ from .tables import (
 )
 
 __all__ = ["Result", "analyze", "analyze_volume", "CAUTION"]
-
-CAUTION = (
-    "Research use only. Not a medical device; not for diagnosis or treatment decisions. "
-    "Defer to qualified clinicians and local regulations."
-)
 
 
 @dataclass
@@ -236,7 +232,11 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
                 kind = "terminal"
             else:
                 kind = "internal"
-            flags = ("touches_image_edge",) if comp.touches_border else ()
+            flags = ()
+            if comp.touches_border and _free_end_at_edge(
+                b.path, free, comp.offset, boundary.at_index, float(spacing.min()), volume.shape
+            ):
+                flags = ("touches_image_edge",)
             inputs.append(BranchInput(world, b.closed, free[0], free[1]))
             contexts.append(
                 BranchContext(
@@ -321,6 +321,22 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         "environment": {"python": platform.python_version(), "numpy": np.__version__},
     }
     return Result(branches, points, junctions, run, volume)
+
+
+def _free_end_at_edge(path, free, offset, radius_at, voxel_mm, shape) -> bool:
+    """Whether a free end of the branch lies within its own radius (+1 voxel) of the image's faces.
+
+    Such an end is where the field of view cut the vessel, so the branch is truncated: its length and
+    end-point indices do not describe the whole vessel.
+    """
+    for is_free, point in zip(free, (path[0], path[-1]), strict=True):
+        if not is_free:
+            continue
+        g = point + offset
+        to_face = float(min(g.min(), (np.asarray(shape) - 1 - g).min()))
+        if to_face <= float(radius_at(point[None])[0]) / voxel_mm + 1.0:
+            return True
+    return False
 
 
 def _columns(rows: list[dict], schema) -> dict[str, list] | None:

@@ -16,11 +16,12 @@ import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from .caution import CAUTION
 from .io.affine import voxel_sizes
 
 __all__ = ["qc_figure", "profile_figures"]
 
-_CAPTION = "Research use only; not a medical device; not for diagnosis or treatment decisions."
+_CAPTION = CAUTION
 _AXES = ("i", "j", "k")
 
 

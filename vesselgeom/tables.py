@@ -278,8 +278,9 @@ JUNCTION_COLUMNS: tuple[Column, ...] = (
            "written 'a-b:angle' and joined by semicolons (for example "
            "'3-7:74.9;3-12:142.0;7-12:143.1'): a <= b are branch_ids, pairs in ascending (a, b) "
            "order, the angle arccos(da . db) in degrees with one decimal, each direction the "
-           "unit vector from the node towards its branch's centreline a short distance (of the "
-           "order of the local radius) away, so that 180.0 is a straight continuation; a loop "
+           "branch's unit tangent pointing away from the node, taken junction_angle_radii "
+           "smoothing scales (about two radii) along the branch, at most half its length, so "
+           "that 180.0 is a straight continuation; a loop "
            "with both ends here gives 'a-a' and may repeat pairs. In degrees. The empty string "
            "when no direction could be measured."),
 )

@@ -23,7 +23,7 @@ import pandas as pd
 from tqdm import tqdm
 
 from .. import __version__
-from ..errors import VesselgeomError
+from ..errors import VesselgeomError, VesselgeomWarning
 from ..io import atomic_write_text, file_sha256
 from ..pipeline import CAUTION, analyze
 from ..settings import Settings
@@ -66,10 +66,12 @@ def _analyze_one(subject: Subject, out: Path, settings: Settings) -> SubjectOutc
     """Worker: analyse one subject and write its folder; errors become a failed outcome."""
     t0 = time.perf_counter()
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # recorded in the subject's run.json
+        with warnings.catch_warnings(record=True) as caught:  # also recorded in the subject's run.json
+            warnings.simplefilter("always")
             analyze(subject.mask, settings=settings).write(out / subject.subject)
-        return SubjectOutcome(subject.subject, subject.group, "ok", time.perf_counter() - t0)
+        notes = [str(w.message) for w in caught if issubclass(w.category, VesselgeomWarning)]
+        message = f"{len(notes)} warning(s), first: {notes[0]}" if notes else ""
+        return SubjectOutcome(subject.subject, subject.group, "ok", time.perf_counter() - t0, message)
     except (VesselgeomError, ValueError) as exc:
         msg = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         return SubjectOutcome(subject.subject, subject.group, "failed", time.perf_counter() - t0, msg)

@@ -15,6 +15,7 @@ import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from vesselgeom.caution import CAUTION
 from vesselgeom.cohort.stats import _group_labels, _values
 from vesselgeom.errors import InputError
 
@@ -33,7 +34,7 @@ def metric_figure(
     metric: str,
     path: str | PathLike,
     title: str | None = None,
-    caption: str = "Research use only; not a medical device.",
+    caption: str = CAUTION,
 ) -> Path:
     """Write a PNG with one box per group (no fliers) and each subject's value as a jittered point.
 
@@ -107,6 +108,6 @@ def metric_figure(
         ax.set_title(title, fontsize=10)
     fig.subplots_adjust(left=0.2, right=0.96, bottom=0.2, top=0.9 if title else 0.95)
     if caption:
-        fig.text(0.5, 0.015, caption, ha="center", va="bottom", fontsize=6, color="0.3")
+        fig.text(0.5, 0.015, caption, ha="center", va="bottom", fontsize=4.5, color="0.3", wrap=True)
     fig.savefig(path, dpi=_DPI, format="png")
     return path
