@@ -69,7 +69,7 @@ def qc_figure(
         to_index(junctions[["x_mm", "y_mm", "z_mm"]].to_numpy(float)) if len(junctions) else np.zeros((0, 3))
     )
 
-    fig = Figure(figsize=(13, 5.2), dpi=110)
+    fig = Figure(figsize=(13, 5.0), dpi=110, layout="constrained")
     FigureCanvasAgg(fig)
     axes = fig.subplots(1, 3)
     scatter = None
