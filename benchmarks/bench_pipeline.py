@@ -1,10 +1,20 @@
-"""Benchmark: whole ``analyze`` against scikit-image thinning alone on synthetic vascular networks.
+"""Benchmark: whole ``analyze`` against scikit-image thinning alone, and a branch-count ladder of geometry.
 
-Run from the repository root: ``python benchmarks/bench_pipeline.py [--sizes 256 ...] [--out FILE]``.
-Each size runs in a fresh subprocess (so peak memory is that run's own), generates a network with a
-fixed seed (``vesselgeom.phantoms.network_phantom``), times thinning alone and the whole pipeline on the
-same mask in the same process, and prints per-stage times, peak resident memory and the ratio.
-Results are appended to ``benchmarks/results.md`` with the machine's description.
+Run from the repository root: ``python benchmarks/bench_pipeline.py [--sizes 256 ...] [--ladder 1000 ...]``.
+
+Each case runs in a fresh subprocess, so its peak resident memory is its own.
+
+*Networks* (``--sizes``): a network of random trees (``vesselgeom.phantoms.network_phantom``, fixed seed,
+radii 1-5 voxels); thinning alone (scikit-image) and the whole pipeline are timed on the same mask in the
+same process, with the pipeline's per-stage times (``run.json`` timings) and the ratio.
+
+*Ladder* (``--ladder``): the geometry stages alone (trace: ``vesselgeom.centerline.trace_centerlines``;
+measure: ``vesselgeom.measure.branch_row`` and ``point_columns``) on N branches. The branches are those
+of a fixed-seed 256^3 network, prepared as the pipeline prepares them (components, thinning, graph,
+pruning), and cycled component by component until N branches have been traced, as if the network were
+tiled N / 396 times. Reports time per branch; linear cost means a constant time per branch.
+
+Results are appended to ``benchmarks/results.md`` (or ``--out``) with the machine's description.
 """
 
 from __future__ import annotations
@@ -21,13 +31,20 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 
+# name -> (shape, n_trees, depth); depth 7 reaches the 1-voxel radius floor (5 / 2^(6/3) = 1.25)
 SIZES = {
     "256": ((256, 256, 256), 12, 6),
-    "400x512x512": ((400, 512, 512), 40, 7),
+    "400x512x512": ((400, 512, 512), 85, 7),
 }
+LADDER = (1_000, 10_000, 100_000)
+_LADDER_SOURCE = ((256, 256, 256), 12, 6)
 
 
-def _one(name: str) -> dict:
+def _peak_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _network(name: str) -> dict:
     import numpy as np
     from skimage.morphology import skeletonize
 
@@ -38,19 +55,18 @@ def _one(name: str) -> dict:
     t = time.perf_counter()
     mask, affine = network_phantom(shape, n_trees=n_trees, depth=depth, seed=1)
     gen = time.perf_counter() - t
-    base_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    base_rss = _peak_mb()
     t = time.perf_counter()
     skeletonize(mask)
     thin = time.perf_counter() - t
     t = time.perf_counter()
     res = vg.analyze(mask, affine=affine)
     whole = time.perf_counter() - t
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     return {
         "case": name,
         "shape": list(shape),
         "foreground_voxels": int(mask.sum()),
-        "foreground_fraction": float(mask.mean()),
+        "foreground_fraction": round(float(mask.mean()), 4),
         "branches": len(res.branches),
         "junctions": len(res.junctions),
         "generate_s": round(gen, 2),
@@ -58,46 +74,173 @@ def _one(name: str) -> dict:
         "analyze_s": round(whole, 2),
         "ratio_analyze_to_thinning": round(whole / thin, 2),
         "stages_s": res.run["timings_seconds"],
-        "peak_rss_mb": round(peak, 1),
+        "peak_rss_mb": round(_peak_mb(), 1),
         "rss_before_analyze_mb": round(base_rss, 1),
         "mask_uint8_mb": round(mask.size / 2**20, 1),
         "total_length_mm": round(float(np.nansum(res.branches["length_mm"])), 1),
     }
 
 
+def _prepared_components():
+    """Per component of the ladder's source network: (section, boundary, inputs, contexts)."""
+    import numpy as np
+
+    from vesselgeom.centerline import BranchInput
+    from vesselgeom.crosssection import CrossSection
+    from vesselgeom.graph import build_graph, prune_spurs
+    from vesselgeom.measure import BranchContext
+    from vesselgeom.phantoms import network_phantom
+    from vesselgeom.radius import BoundaryDistance
+    from vesselgeom.settings import Settings
+    from vesselgeom.skeleton import iter_components, thin
+
+    shape, n_trees, depth = _LADDER_SOURCE
+    mask, affine = network_phantom(shape, n_trees=n_trees, depth=depth, seed=1)
+    settings = Settings()
+    out = []
+    for comp in iter_components(mask, min_voxels=settings.min_component_voxels):
+        aff = affine.copy()
+        aff[:3, 3] = affine[:3, :3] @ comp.offset + affine[:3, 3]
+        skel = thin(comp.mask)
+        if skel.sum() < 2:
+            continue
+        boundary = BoundaryDistance(comp.mask, aff)
+        graph = prune_spurs(
+            build_graph(skel), linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
+        )
+        inputs, contexts = [], []
+        for i, b in enumerate(graph.branches):
+            free = [graph.nodes[n].kind == "end" if n is not None else False for n in (b.start, b.end)]
+            world = b.path @ aff[:3, :3].T + aff[:3, 3]
+            inputs.append(BranchInput(world, b.closed, free[0], free[1]))
+            contexts.append(BranchContext(i + 1, comp.component_id, "internal", None, None))
+        if inputs:
+            out.append((CrossSection(comp.mask, aff), boundary, inputs, contexts))
+    return out, float(np.mean(np.abs(np.diag(affine)[:3]))), settings
+
+
+def _ladder(n: int) -> dict:
+    from vesselgeom.centerline import trace_centerlines
+    from vesselgeom.measure import branch_row, point_columns
+
+    comps, voxel_mm, settings = _prepared_components()
+    source_branches = sum(len(c[2]) for c in comps)
+    base_rss = _peak_mb()
+    trace = measure = 0.0
+    done = points = 0
+    while done < n:
+        for section, boundary, inputs, contexts in comps:
+            take = min(len(inputs), n - done)
+            if take <= 0:
+                break
+            t = time.perf_counter()
+            lines = trace_centerlines(
+                inputs[:take], section=section, boundary=boundary, voxel_mm=voxel_mm, settings=settings
+            )
+            t1 = time.perf_counter()
+            for cl, ctx in zip(lines, contexts[:take], strict=True):
+                branch_row(cl, ctx, settings=settings, voxel_mm=voxel_mm)
+                if cl is not None:
+                    points += len(point_columns(cl, ctx.branch_id)["arc_mm"])
+            t2 = time.perf_counter()
+            trace += t1 - t
+            measure += t2 - t1
+            done += take
+    total = trace + measure
+    return {
+        "branches": n,
+        "source_branches": source_branches,
+        "points": points,
+        "trace_s": round(trace, 2),
+        "measure_s": round(measure, 2),
+        "geometry_s": round(total, 2),
+        "ms_per_branch": round(1000 * total / n, 3),
+        "peak_rss_mb": round(_peak_mb(), 1),
+        "rss_before_geometry_mb": round(base_rss, 1),
+    }
+
+
+def _run(flag: str, value: str) -> dict:
+    proc = subprocess.run([sys.executable, __file__, flag, value], capture_output=True, text=True, check=True)
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def _machine() -> str:
+    cpu = platform.processor() or platform.machine()
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    mem = ""
+    try:
+        kb = int(Path("/proc/meminfo").read_text().split()[1])
+        mem = f", {kb / 2**20:.0f} GiB RAM"
+    except (OSError, ValueError, IndexError):
+        pass
+    import numpy
+    import scipy
+    import skimage
+
+    return (
+        f"{cpu}, {os.cpu_count()} cores{mem}; Python {platform.python_version()}, numpy {numpy.__version__}, "
+        f"scipy {scipy.__version__}, scikit-image {skimage.__version__}"
+    )
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--sizes", nargs="+", default=list(SIZES), choices=list(SIZES))
+    ap.add_argument("--sizes", nargs="*", default=list(SIZES), choices=list(SIZES))
+    ap.add_argument("--ladder", nargs="*", type=int, default=list(LADDER), help="branch counts")
     ap.add_argument("--one", help=argparse.SUPPRESS)
+    ap.add_argument("--one-ladder", type=int, help=argparse.SUPPRESS)
     ap.add_argument("--out", default=str(HERE / "results.md"))
-    ap.add_argument("--label", default="", help="a note for the results table (e.g. 'before')")
+    ap.add_argument("--label", default="", help="a note for the results heading (e.g. 'before')")
     args = ap.parse_args()
     if args.one:
-        print(json.dumps(_one(args.one)))
+        print(json.dumps(_network(args.one)))
         return
-    rows = []
+    if args.one_ladder:
+        print(json.dumps(_ladder(args.one_ladder)))
+        return
+    lines = [f"\n## {time.strftime('%Y-%m-%d %H:%M')} {args.label}".rstrip(), f"Machine: {_machine()}.", ""]
+    if args.sizes:
+        lines += [
+            "| network | fg voxels (fraction) | branches | thinning alone s | analyze s | ratio | stages s "
+            "| peak RSS MB | mask MB | RSS limit MB |",
+            "|---|---|---|---|---|---|---|---|---|---|",
+        ]
     for name in args.sizes:
-        proc = subprocess.run(
-            [sys.executable, __file__, "--one", name], capture_output=True, text=True, check=True
-        )
-        row = json.loads(proc.stdout.strip().splitlines()[-1])
-        rows.append(row)
-        print(json.dumps(row))
-    machine = f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}"
-    lines = [
-        f"\n## {time.strftime('%Y-%m-%d %H:%M')} {args.label}".rstrip(),
-        f"Machine: {machine}.",
-        "",
-        "| case | fg voxels | branches | thinning s | analyze s | ratio | stages s | peak RSS MB | mask MB |",
-        "|---|---|---|---|---|---|---|---|---|",
-    ]
-    for r in rows:
+        r = _run("--one", name)
+        print(json.dumps(r), flush=True)
         stages = ", ".join(f"{k} {v}" for k, v in r["stages_s"].items())
         lines.append(
-            f"| {r['case']} | {r['foreground_voxels']} | {r['branches']} | {r['thinning_alone_s']} | "
-            f"{r['analyze_s']} | {r['ratio_analyze_to_thinning']} | {stages} | {r['peak_rss_mb']} | "
-            f"{r['mask_uint8_mb']} |"
+            f"| {r['case']} | {r['foreground_voxels']} ({100 * r['foreground_fraction']:.2f} %) | "
+            f"{r['branches']} | {r['thinning_alone_s']} | {r['analyze_s']} | "
+            f"**{r['ratio_analyze_to_thinning']}** | {stages} | {r['peak_rss_mb']} | "
+            f"{r['mask_uint8_mb']} | {4 * r['mask_uint8_mb'] + 300:.0f} |"
         )
+    if args.ladder:
+        lines += [
+            "",
+            "| geometry ladder: branches | points | trace s | measure s | total s | ms / branch "
+            "| x time for 10x branches | peak RSS MB |",
+            "|---|---|---|---|---|---|---|---|",
+        ]
+    prev = None
+    for n in args.ladder:
+        r = _run("--one-ladder", str(n))
+        print(json.dumps(r), flush=True)
+        ratio = "-"
+        if prev and prev["branches"] * 10 == n:
+            ratio = f"{r['geometry_s'] / prev['geometry_s']:.1f}"
+        lines.append(
+            f"| {n} | {r['points']} | {r['trace_s']} | {r['measure_s']} | {r['geometry_s']} | "
+            f"{r['ms_per_branch']} | {ratio} | {r['peak_rss_mb']} |"
+        )
+        prev = r
     out = Path(args.out)
     if not out.exists():
         out.write_text(

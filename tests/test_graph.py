@@ -292,3 +292,32 @@ def test_solid_torus_thins_to_one_loop(big, small):
     idx = path.astype(int)
     core = np.hypot(np.hypot(g[idx[:, 0]], g[idx[:, 1]]) - big, z[idx[:, 2]])
     assert core.max() <= 1.0
+
+
+def test_skeleton_of_junction_voxels_only_is_one_node_without_branches():
+    # a 2 x 2 x 2 block: every voxel has 7 26-neighbours (>= 3: junction, METHODS.md), so the block is
+    # one junction cluster (one 26-connected component, checked with scipy.ndimage.label) and no chain
+    sk = np.zeros((5, 5, 5), bool)
+    sk[1:3, 1:3, 1:3] = True
+    assert ndimage.label(sk, structure=np.ones((3, 3, 3)))[1] == 1
+    g = build_graph(sk)
+    assert [n.kind for n in g.nodes.values()] == ["junction"]
+    assert g.branches == []
+    np.testing.assert_allclose(g.nodes[0].position, [1.5, 1.5, 1.5])
+
+
+def test_pruning_many_spurs_matches_one_by_one_rule():
+    # a comb: a long spine (x axis) with short teeth every 6 voxels; teeth of 2 voxels are below
+    # 1.5 x 2 mm and are removed (Palagyi et al. 2006), leaving the spine as one branch between two ends
+    sk = np.zeros((3, 64, 5), bool)
+    sk[1, 1:63, 1] = True
+    for y in range(7, 57, 6):
+        sk[1, y, 2:4] = True
+    g = prune_spurs(build_graph(sk), linear=np.eye(3), radius_at=_radius_2mm, ratio=1.5)
+    assert len(g.branches) == 1
+    assert sorted(n.kind for n in g.nodes.values()) == ["end", "end"]
+    assert g.degree(next(iter(g.nodes))) == 1
+    path = g.branches[0].path
+    ends = sorted([path[0].tolist(), path[-1].tolist()])
+    assert ends == [[1.0, 1.0, 1.0], [1.0, 62.0, 1.0]]
+    assert np.all(np.abs(np.diff(path[:, 1])) > 0)  # runs along the spine, through each junction once

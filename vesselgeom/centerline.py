@@ -8,7 +8,7 @@ Frenet-Serret frame, curvature, torsion and radius at every sample.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -16,7 +16,7 @@ from .crosssection import CrossSection
 from .frames import Frame, frenet_frame
 from .radius import BoundaryDistance
 from .settings import Settings
-from .spline import CurveFit, arc_length_samples, fit_curve
+from .spline import CurveFit, CurvePack, _linspace, arc_length_samples_many, fit_curves
 
 __all__ = ["Centerline", "BranchInput", "trace_centerlines"]
 
@@ -89,74 +89,135 @@ def _even_samples(fit: CurveFit, step: float) -> np.ndarray:
     return np.linspace(fit.u0, fit.u1, n + 1)
 
 
+def _even_samples_many(pack: CurvePack, step: float) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_even_samples` of every valid curve of ``pack``: (curve index, parameter) per sample."""
+    sel = np.flatnonzero(pack.valid)
+    u0, u1, closed = pack.u0[sel], pack.u1[sel], pack.closed[sel]
+    n = np.maximum(np.ceil((u1 - u0) / step).astype(np.intp), 2)
+    num = np.where(closed, n, n + 1)
+    u, g = _linspace(u0, u1, num)
+    if closed.any():
+        j = np.arange(len(u)) - np.repeat(np.cumsum(num) - num, num)
+        c = closed[g]
+        u[c] = u0[g[c]] + j[c] * (u1 - u0)[g[c]] / n[g[c]]
+    return sel[g], u
+
+
 def _unit(v: np.ndarray) -> np.ndarray:
     return v / np.linalg.norm(v, axis=-1, keepdims=True)
 
 
-def _exit_distance(
-    start: np.ndarray, direction: np.ndarray, reach: float, section: CrossSection, voxel: float
-) -> float:
-    """Distance from ``start`` along ``direction`` to where the interpolated mask falls below 0.5 (mm).
-
-    Returns ``reach`` when the mask does not end within it.
-    """
-    d = np.arange(0.0, reach + 0.25 * voxel, 0.25 * voxel)
-    vals = section.sample(start[None, :] + d[:, None] * direction[None, :])
-    outside = np.flatnonzero(vals < 0.5)
-    if outside.size == 0:
-        return float(reach)
-    i = outside[0]
-    if i == 0:
-        return 0.0
-    return float(d[i - 1] + (vals[i - 1] - 0.5) / (vals[i - 1] - vals[i]) * (d[i] - d[i - 1]))
+def _split(values: np.ndarray, gid: np.ndarray, n: int) -> list[np.ndarray]:
+    """Rows of ``values`` grouped by ``gid`` (sorted), as a list of n arrays (empty for absent groups)."""
+    bounds = np.r_[0, np.cumsum(np.bincount(gid, minlength=n))]
+    return [values[bounds[i] : bounds[i + 1]] for i in range(n)]
 
 
-def _extend_free_ends(
-    fit: CurveFit,
-    b: BranchInput,
-    scale: float,
+def _group_median(values: list[np.ndarray]) -> np.ndarray:
+    """np.nanmedian of each array (NaN for an empty or all-NaN one)."""
+    out = np.full(len(values), np.nan)
+    for i, v in enumerate(values):
+        v = v[~np.isnan(v)]
+        if v.size:
+            out[i] = np.median(v)
+    return out
+
+
+def _extend_free_ends_many(
+    pack: CurvePack,
+    branches: list[BranchInput],
+    scales: np.ndarray,
     section: CrossSection,
     boundary: BoundaryDistance,
     voxel: float,
     settings: Settings,
-) -> tuple[CurveFit, np.ndarray]:
+) -> tuple[list[CurveFit | None], np.ndarray]:
     """Replace the last ``scale`` of each terminal end by a straight stub reaching the axis end.
 
     Thinning stops a round-ended vessel's skeleton short of the axis end, and a spline is least
     constrained over its last smoothing length. From the point one scale inside the end, along the tangent
-    there, the mask is followed to where it ends; the axis end is
-    placed one local radius short of that (the mask surface of a rounded end lies one radius beyond
-    the axis end). Returns the refitted curve and the stub lengths (mm) at the start and the end.
+    there, the mask is followed to where it ends (the interpolated mask falls below 0.5, sampled every
+    quarter voxel); the axis end is placed one local radius short of that (the mask surface of a rounded
+    end lies one radius beyond the axis end). Returns the refitted curves (unchanged where nothing is
+    extended) and the stub lengths (mm) at the start and the end of every branch, (n, 2).
     """
-    stubs = np.zeros(2)
-    lo, hi = fit.u0, fit.u1
-    heads: list[np.ndarray] = []
-    tails: list[np.ndarray] = []
-    for side, free in ((0, b.free_start), (1, b.free_end)):
-        if not free:
-            continue
-        sign = 1.0 if side == 0 else -1.0
-        u_end = fit.u0 if side == 0 else fit.u1
-        u_a = float(np.clip(u_end + sign * scale, fit.u0, fit.u1))
-        p_a = fit(np.array([u_a]))[0]
-        direction = -sign * _unit(fit(np.array([u_a]), 1)[0])
-        r_a = float(boundary(p_a[None])[0])
-        reach = abs(u_end - u_a) + 8.0 * max(r_a, voxel)
-        stubs[side] = max(_exit_distance(p_a, direction, reach, section, voxel) - r_a, 0.0)
-        n = max(int(np.ceil(stubs[side] / (0.5 * voxel))), 1)
-        stub = p_a + np.linspace(0.0, stubs[side], n + 1)[1:, None] * direction
-        if side == 0:
-            lo = u_a
-            heads.append(stub[::-1])
+    fits = list(pack.fits)
+    ext = np.zeros((len(fits), 2))
+    ends = [
+        (i, side)
+        for i, (b, f) in enumerate(zip(branches, fits, strict=True))
+        if f is not None and not b.closed
+        for side, free in ((0, b.free_start), (1, b.free_end))
+        if free
+    ]
+    if not ends:
+        return fits, ext
+    bi = np.array([e[0] for e in ends], np.intp)
+    side = np.array([e[1] for e in ends])
+    sign = np.where(side == 0, 1.0, -1.0)
+    u0, u1 = pack.u0[bi], pack.u1[bi]
+    u_end = np.where(side == 0, u0, u1)
+    u_a = np.clip(u_end + sign * scales[bi], u0, u1)
+    p_a = pack(bi, u_a)
+    direction = -sign[:, None] * _unit(pack(bi, u_a, 1))
+    r_a = boundary(p_a)
+    reach = np.abs(u_end - u_a) + 8.0 * np.maximum(r_a, voxel)
+    # rays of samples every quarter voxel, all ends at once (as np.arange(0, reach + dq, dq))
+    dq = 0.25 * voxel
+    n_s = np.ceil((reach + dq - 0.0) / dq).astype(np.intp)
+    e_of = np.repeat(np.arange(len(ends)), n_s)
+    d = (np.arange(len(e_of)) - np.repeat(np.cumsum(n_s) - n_s, n_s)) * dq
+    vals = section.sample(p_a[e_of] + d[:, None] * direction[e_of])
+    start = np.cumsum(n_s) - n_s
+    outside = np.where(vals < 0.5, np.arange(len(vals)), len(vals))
+    first_out = np.minimum.reduceat(outside, start)
+    exit_d = reach.copy()
+    hit = first_out < start + n_s
+    i = first_out[hit]
+    at0 = i == start[hit]
+    j = np.maximum(i - 1, 0)
+    frac = d[j] + (vals[j] - 0.5) / (vals[j] - vals[i]) * (d[i] - d[j])
+    exit_d[hit] = np.where(at0, 0.0, frac)
+    stub_len = np.maximum(exit_d - r_a, 0.0)
+    stubs: dict[tuple[int, int], np.ndarray] = {}
+    for e, (b_i, s_i) in enumerate(ends):
+        n = max(int(np.ceil(stub_len[e] / (0.5 * voxel))), 1)
+        stub = p_a[e] + np.linspace(0.0, stub_len[e], n + 1)[1:, None] * direction[e]
+        stubs[(b_i, s_i)] = stub
+    # the kept part of each extended curve, densely sampled, between its stubs
+    lo = {b_i: pack.u0[b_i] for b_i, _ in ends}
+    hi = {b_i: pack.u1[b_i] for b_i, _ in ends}
+    for e, (b_i, s_i) in enumerate(ends):
+        if s_i == 0:
+            lo[b_i] = u_a[e]
         else:
-            hi = u_a
-            tails.append(stub)
-    if lo >= hi:
-        return fit, np.zeros(2)
-    u = np.linspace(lo, hi, max(int(np.ceil((hi - lo) / (0.5 * voxel))), 2) + 1)
-    pts = np.concatenate([*heads, fit(u), *tails])
-    refit = fit_curve(pts, smoothing_mm=settings.smoothing_radii * scale, closed=False)
-    return (refit, stubs) if refit is not None else (fit, np.zeros(2))
+            hi[b_i] = u_a[e]
+    todo = [b_i for b_i in dict.fromkeys(bi.tolist()) if lo[b_i] < hi[b_i]]
+    if not todo:
+        return fits, ext
+    t_lo = np.array([lo[b_i] for b_i in todo])
+    t_hi = np.array([hi[b_i] for b_i in todo])
+    num = np.maximum(np.ceil((t_hi - t_lo) / (0.5 * voxel)).astype(np.intp), 2) + 1
+    uu, gg = _linspace(t_lo, t_hi, num)
+    kept = _split(pack(np.asarray(todo, np.intp)[gg], uu), gg, len(todo))
+    pts = [
+        np.concatenate(
+            [
+                *([stubs[(b_i, 0)][::-1]] if (b_i, 0) in stubs else []),
+                mid,
+                *([stubs[(b_i, 1)]] if (b_i, 1) in stubs else []),
+            ]
+        )
+        for b_i, mid in zip(todo, kept, strict=True)
+    ]
+    refits = fit_curves(pts, smoothing_mm=[settings.smoothing_radii * scales[b_i] for b_i in todo])
+    lengths = {(b_i, s_i): stub_len[e] for e, (b_i, s_i) in enumerate(ends)}
+    for b_i, refit in zip(todo, refits, strict=True):
+        if refit is None:
+            continue
+        fits[b_i] = refit
+        ext[b_i] = [lengths.get((b_i, 0), 0.0), lengths.get((b_i, 1), 0.0)]
+    return fits, ext
 
 
 def trace_centerlines(
@@ -169,6 +230,9 @@ def trace_centerlines(
 ) -> list[Centerline | None]:
     """Trace every branch of one component; None for a branch that cannot be fitted.
 
+    All branches are processed together: spline fits share one banded solve and evaluations, mask
+    sampling and radius queries are made once per step for all branches.
+
     Parameters
     ----------
     branches : list of BranchInput
@@ -180,67 +244,86 @@ def trace_centerlines(
         Mean voxel size in mm (sets minimum scales and sampling).
     settings : Settings
     """
+    nb = len(branches)
+    if nb == 0:
+        return []
     step = settings.step_mm or settings.step_voxels * voxel_mm
-    scales, fits = [], []
-    for b in branches:
-        r = boundary(b.path)
-        core = r[1:-1] if len(r) > 4 else r
-        scale = max(float(np.nanmedian(core)) if core.size else 0.0, settings.min_scale_voxels * voxel_mm)
-        scales.append(scale)
-        fits.append(fit_curve(b.path, smoothing_mm=settings.smoothing_radii * scale, closed=b.closed))
+    lens = np.array([len(b.path) for b in branches])
+    r_all = _split(boundary(np.concatenate([b.path for b in branches])), np.repeat(np.arange(nb), lens), nb)
+    core = _group_median([r[1:-1] if len(r) > 4 else r for r in r_all])
+    floor_scale = settings.min_scale_voxels * voxel_mm
+    # as max(median, floor) with a NaN median (no boundary) propagating
+    scales = np.where(np.isnan(core), np.nan, np.maximum(np.nan_to_num(core, nan=0.0), floor_scale))
+    scales = np.where(lens == 0, floor_scale, scales)
+    closed = [b.closed for b in branches]
+    smoothing = settings.smoothing_radii * scales
+    fits = fit_curves([b.path for b in branches], smoothing_mm=smoothing, closed=closed)
 
     for _ in range(settings.recentre_passes):
-        us = [(_even_samples(f, voxel_mm) if f is not None else np.zeros(0)) for f in fits]
-        centres = [f(u) if f is not None else np.zeros((0, 3)) for f, u in zip(fits, us, strict=True)]
-        tangents = [
-            _unit(f(u, 1)) if f is not None else np.zeros((0, 3)) for f, u in zip(fits, us, strict=True)
-        ]
-        allc = np.concatenate(centres)
-        if not len(allc):
+        pack = CurvePack(fits)
+        g, u = _even_samples_many(pack, voxel_mm)
+        if not len(u):
             break
-        rad = boundary(allc)
+        centres = pack(g, u)
+        tangents = _unit(pack(g, u, 1))
+        rad = boundary(centres)
         disc = 1.5 * np.maximum(rad, voxel_mm) + voxel_mm
-        moved, _ = section.centroids(allc, np.concatenate(tangents), disc)
-        splits = np.cumsum([len(c) for c in centres])[:-1]
-        for i, new in enumerate(np.split(moved, splits)):
-            if fits[i] is None:
-                continue
-            fits[i] = (
-                fit_curve(
-                    new,
-                    smoothing_mm=settings.smoothing_radii * scales[i],
-                    closed=branches[i].closed,
-                )
-                or fits[i]
-            )
+        moved, _ = section.centroids(centres, tangents, disc)
+        refits = fit_curves(_split(moved, g, nb), smoothing_mm=smoothing, closed=closed)
+        fits = [
+            new if (old is not None and new is not None) else old
+            for old, new in zip(fits, refits, strict=True)
+        ]
 
+    pack = CurvePack(fits)
+    fits, ext = _extend_free_ends_many(pack, branches, scales, section, boundary, voxel_mm, settings)
+    pack = CurvePack(fits)
+    gid, arc, _u, r, d1, d2, d3 = arc_length_samples_many(pack, step)
+    floor = settings.curvature_floor_per_voxel / voxel_mm
+    frame = frenet_frame(d1, d2, d3, curvature_floor=floor)
+    # torsion from a smoother fit of the same curve, parametrised (to 1e-4) by the same arc length
+    g, u = _even_samples_many(pack, 0.5 * voxel_mm)
+    dense = _split(pack(g, u), g, nb)
+    smooth = fit_curves(dense, smoothing_mm=settings.torsion_smoothing_radii * scales, closed=closed)
+    smooth = [s if f is not None else None for s, f in zip(smooth, fits, strict=True)]
+    has = np.array([s is not None for s in smooth])[gid]
+    spack = CurvePack(smooth)
+    a = np.clip(arc[has], spack.u0[gid[has]], spack.u1[gid[has]])
+    tau = frenet_frame(spack(gid[has], a, 1), spack(gid[has], a, 2), spack(gid[has], a, 3)).torsion
+    torsion = frame.torsion.copy()
+    torsion[has] = np.where(np.isfinite(frame.torsion[has]), tau, np.nan)
+    radius = boundary(r)
+
+    bounds = np.r_[0, np.cumsum(np.bincount(gid, minlength=nb))]
     out: list[Centerline | None] = []
-    for b, fit, scale in zip(branches, fits, scales, strict=True):
+    for i, (b, fit) in enumerate(zip(branches, fits, strict=True)):
         if fit is None:
             out.append(None)
             continue
-        ext = np.zeros(2)
-        if not b.closed and (b.free_start or b.free_end):
-            fit, ext = _extend_free_ends(fit, b, scale, section, boundary, voxel_mm, settings)
-        arc, _u, r, d1, d2, d3 = arc_length_samples(fit, step)
-        floor = settings.curvature_floor_per_voxel / voxel_mm
-        frame = frenet_frame(d1, d2, d3, curvature_floor=floor)
-        # torsion from a smoother fit of the same curve, parametrised (to 1e-4) by the same arc length
-        dense = fit(_even_samples(fit, 0.5 * voxel_mm))
-        smooth = fit_curve(dense, smoothing_mm=settings.torsion_smoothing_radii * scale, closed=fit.closed)
-        if smooth is not None:
-            a = np.clip(arc, smooth.u0, smooth.u1)
-            tau = frenet_frame(smooth(a, 1), smooth(a, 2), smooth(a, 3)).torsion
-            frame = replace(frame, torsion=np.where(np.isfinite(frame.torsion), tau, np.nan))
-        radius = boundary(r)
-        length = arc[-1]
-        measured = np.ones(len(arc), bool)
+        sl = slice(bounds[i], bounds[i + 1])
+        arc_i = arc[sl]
+        length = arc_i[-1]
+        measured = np.ones(len(arc_i), bool)
         if not b.closed:
-            trim_start = ext[0] + settings.end_trim_radii * scale
-            trim_end = ext[1] + settings.end_trim_radii * scale
-            measured = (arc >= trim_start - 1e-9) & (arc <= length - trim_end + 1e-9)
+            trim_start = ext[i, 0] + settings.end_trim_radii * scales[i]
+            trim_end = ext[i, 1] + settings.end_trim_radii * scales[i]
+            measured = (arc_i >= trim_start - 1e-9) & (arc_i <= length - trim_end + 1e-9)
             if not measured.any():  # a branch shorter than its trims: keep its middle sample
-                measured[len(arc) // 2] = True
-        step_used = float(arc[1] - arc[0]) if len(arc) > 1 else 0.0
-        out.append(Centerline(arc, r, frame, radius, measured, b.closed, step_used, scale, fit.degree, ext))
+                measured[len(arc_i) // 2] = True
+        fr = Frame(frame.tangent[sl], frame.normal[sl], frame.binormal[sl], frame.curvature[sl], torsion[sl])
+        step_used = float(arc_i[1] - arc_i[0]) if len(arc_i) > 1 else 0.0
+        out.append(
+            Centerline(
+                arc_i,
+                r[sl],
+                fr,
+                radius[sl],
+                measured,
+                b.closed,
+                step_used,
+                float(scales[i]),
+                fit.degree,
+                ext[i],
+            )
+        )
     return out

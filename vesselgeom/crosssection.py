@@ -39,7 +39,9 @@ class CrossSection:
     """
 
     def __init__(self, mask: np.ndarray, affine: np.ndarray, *, samples_per_side: int = 17) -> None:
-        self._data = mask.astype(np.float32)
+        # 0/1 bytes (a view, no copy, of a bool mask); interpolated in double, returned as float32
+        m = np.asarray(mask)
+        self._data = m.view(np.uint8) if m.dtype == bool else (m != 0).astype(np.uint8)
         self._affine = np.asarray(affine, float)
         self._inv = np.linalg.inv(self._affine)
         g = np.linspace(-1.0, 1.0, samples_per_side)
@@ -48,12 +50,15 @@ class CrossSection:
         self._grid = np.stack([a[keep], b[keep]], axis=1)
         self._cell = (g[1] - g[0]) ** 2
 
+    def _sample_index(self, ijk: np.ndarray) -> np.ndarray:
+        """Trilinear mask values at (3, m) index coordinates; 0 outside the array."""
+        return ndimage.map_coordinates(self._data, ijk, order=1, mode="constant", cval=0.0, output=np.float32)
+
     def sample(self, points_mm: np.ndarray) -> np.ndarray:
         """Trilinear mask values (0..1) at (..., 3) world points; 0 outside the array."""
         pts = np.asarray(points_mm, float)
         ijk = pts.reshape(-1, 3) @ self._inv[:3, :3].T + self._inv[:3, 3]
-        vals = ndimage.map_coordinates(self._data, ijk.T, order=1, mode="constant", cval=0.0)
-        return vals.reshape(pts.shape[:-1])
+        return self._sample_index(ijk.T).reshape(pts.shape[:-1])
 
     def centroids(
         self,
@@ -80,22 +85,35 @@ class CrossSection:
             Mask-weighted centroid of each disc (in its plane); the centre itself where the disc is empty.
         area_radius : (n,) float array, mm
             sqrt(area / pi) of the mask's section within the disc.
+
+        Notes
+        -----
+        Disc points are built directly in index space (the affine is linear), and the weighted mean
+        offset is rho (e1 sum(w a) + e2 sum(w b)) / sum(w) for grid coordinates (a, b).
         """
         centres = np.asarray(centres, float)
         out = centres.copy()
         area_r = np.zeros(len(centres))
         e1, e2 = normal_basis(tangents)
+        lin = self._inv[:3, :3]
+        c_ijk = centres @ lin.T + self._inv[:3, 3]
+        e1_ijk, e2_ijk = e1 @ lin.T, e2 @ lin.T
+        ga, gb = self._grid[:, 0], self._grid[:, 1]
+        radii = np.asarray(disc_radii, float)
         for lo in range(0, len(centres), chunk):
             sl = slice(lo, lo + chunk)
-            rho = np.asarray(disc_radii, float)[sl, None, None]
-            offs = rho * (
-                self._grid[None, :, 0, None] * e1[sl, None, :]
-                + self._grid[None, :, 1, None] * e2[sl, None, :]
-            )
-            w = self.sample(centres[sl, None, :] + offs)
-            wsum = w.sum(axis=1)
-            shift = np.einsum("ng,ngk->nk", w, offs) / np.where(wsum > 0, wsum, 1.0)[:, None]
+            rho = radii[sl]
+            ijk = np.empty((3, len(rho), len(ga)))
+            for d in range(3):
+                ijk[d] = c_ijk[sl, d, None] + rho[:, None] * (
+                    ga[None, :] * e1_ijk[sl, d, None] + gb[None, :] * e2_ijk[sl, d, None]
+                )
+            w = self._sample_index(ijk.reshape(3, -1)).reshape(len(rho), len(ga))
+            wsum = w.sum(axis=1)  # float32, as the mask values
+            sa, sb = w @ ga, w @ gb
+            safe = np.where(wsum > 0, wsum, 1.0)
+            shift = rho[:, None] * (sa[:, None] * e1[sl] + sb[:, None] * e2[sl]) / safe[:, None]
             out[sl] = centres[sl] + shift
-            area = wsum * self._cell * rho[:, 0, 0] ** 2
+            area = wsum * self._cell * rho**2
             area_r[sl] = np.sqrt(area / np.pi)
         return out, area_r

@@ -191,6 +191,8 @@ def build_graph_from_coords(coords: np.ndarray, shape: tuple[int, ...]) -> Skele
     order = np.lexsort((rank, clab[voxel]))
     voxel = voxel[order]
     bounds = np.flatnonzero(np.r_[True, clab[voxel][1:] != clab[voxel][:-1], True])
+    if not voxel.size:  # only junction voxels (a blob): no chain, no branch
+        bounds = bounds[:1]
 
     # junction neighbours of each voxel (at most two for chain voxels)
     jn = pairs[is_chain[pairs[:, 0]] & is_junc[pairs[:, 1]]]
@@ -277,7 +279,7 @@ def prune_spurs(
         Spur length threshold in junction radii.
     """
     while True:
-        degree = {nid: graph.degree(nid) for nid in graph.nodes}
+        degree = _degrees(graph)
         junctions = [nid for nid, nd in graph.nodes.items() if nd.kind == "junction"]
         positions = np.array([graph.nodes[j].position for j in junctions]).reshape(-1, 3)
         rj = dict(zip(junctions, radius_at(positions), strict=True)) if junctions else {}
@@ -322,19 +324,42 @@ def prune_spurs(
             return graph
 
 
+def _degrees(graph: SkeletonGraph) -> dict[int, int]:
+    """:meth:`SkeletonGraph.degree` of every node, in one pass over the branches."""
+    degree = dict.fromkeys(graph.nodes, 0)
+    for b in graph.branches:
+        for n_ in (b.start, b.end):
+            if n_ in degree:
+                degree[n_] += 1
+    return degree
+
+
 def _merge_degree_two(graph: SkeletonGraph) -> bool:
-    """Join the two branches at each junction with exactly two branch ends; True if anything changed."""
+    """Join the two branches at each junction with exactly two branch ends; True if anything changed.
+
+    Nodes are visited in id order; a merged branch goes to the end of the branch list. Branches are kept
+    in an insertion-ordered dict (sequence id -> branch) with an index of the branches at each node, so
+    each node costs time in proportion to its degree rather than to the number of branches.
+    """
     changed = False
+    seq = dict(enumerate(graph.branches))
+    next_id = len(seq)
+    at: dict[int, set[int]] = {}
+    for sid, b in seq.items():
+        for n_ in (b.start, b.end):
+            if n_ is not None:
+                at.setdefault(n_, set()).add(sid)
     for nid in sorted(graph.nodes):
         node = graph.nodes[nid]
         if node.kind != "junction":
             continue
-        ends = [
-            (i, side)
-            for i, b in enumerate(graph.branches)
-            for side, n_ in (("start", b.start), ("end", b.end))
-            if n_ == nid
-        ]
+        ends = []
+        for sid in sorted(at.get(nid, ())):
+            b = seq[sid]
+            if b.start == nid:
+                ends.append((sid, "start"))
+            if b.end == nid:
+                ends.append((sid, "end"))
         if len(ends) == 1:
             node.kind = "end"
             changed = True
@@ -344,18 +369,27 @@ def _merge_degree_two(graph: SkeletonGraph) -> bool:
         elif len(ends) == 2:
             (i, si), (k, sk) = ends
             if i == k:  # a self-loop through a now plain node: a closed ring
-                b = graph.branches[i]
-                graph.branches[i] = Branch(b.path[:-1], None, None, closed=True)
+                b = seq[i]
+                seq[i] = Branch(b.path[:-1], None, None, closed=True)
+                at[nid].discard(i)
             else:
-                a, c = graph.branches[i], graph.branches[k]
+                a, c = seq[i], seq[k]
                 pa = a.path if si == "end" else a.path[::-1]  # ends at the node
                 pc = c.path if sk == "start" else c.path[::-1]  # starts at the node
                 first = a.start if si == "end" else a.end
                 last = c.end if sk == "start" else c.start
                 merged = Branch(np.concatenate([pa, pc[1:]]), first, last)
-                for idx in sorted((i, k), reverse=True):
-                    graph.branches.pop(idx)
-                graph.branches.append(merged)
+                for sid, old in ((i, a), (k, c)):
+                    del seq[sid]
+                    for n_ in (old.start, old.end):
+                        if n_ is not None:
+                            at[n_].discard(sid)
+                seq[next_id] = merged
+                for n_ in (first, last):
+                    if n_ is not None:
+                        at.setdefault(n_, set()).add(next_id)
+                next_id += 1
             del graph.nodes[nid]
             changed = True
+    graph.branches = list(seq.values())
     return changed

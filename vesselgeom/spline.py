@@ -15,6 +15,7 @@ P. H. C. Eilers, B. D. Marx, "Flexible smoothing with B-splines and penalties", 
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,7 +24,7 @@ from scipy.interpolate import BSpline
 from scipy.linalg import solveh_banded
 from scipy.sparse.linalg import spsolve
 
-__all__ = ["CurveFit", "fit_curve", "arc_length_samples"]
+__all__ = ["CurveFit", "fit_curve", "fit_curves", "arc_length_samples"]
 
 _DENSE = 8  # evaluation points per output step for the arc-length integral
 _ORDER = 3  # order of the difference penalty: its null space holds quadratics
@@ -67,37 +68,114 @@ def _knots(u0: float, u1: float, k: int, spacing: float) -> np.ndarray:
     return u0 + step * np.arange(-k, intervals + k + 1)
 
 
-def _penalised(u: np.ndarray, pts: np.ndarray, cutoff: float, k: int) -> BSpline | None:
-    """P-spline fit: min |y - B c|^2 + lam |D c|^2 with D the third-difference operator.
+def _uniform_basis(f: np.ndarray, k: int) -> np.ndarray:
+    """Values of the k + 1 B-splines of degree ``k`` on unit-spaced knots that are non-zero at ``f``.
 
-    The knot spacing is ``cutoff / _KNOTS_PER_CUTOFF`` and ``lam`` puts the half-power point of the
-    penalty's transfer function 1 / (1 + lam (2 sin(w / 2))^(2q)) at wavelength ``cutoff``.
+    ``f`` (n,) is the position within the knot interval [i, i + 1] (0 <= f <= 1); column m of the
+    (n, k + 1) result is the basis function starting at knot i - k + m. This is de Boor's recurrence
+    (de Boor 1978, BSPLVB) with the knot differences of a uniform knot vector, where every denominator
+    equals the current degree.
     """
-    delta = cutoff / _KNOTS_PER_CUTOFF
-    t = _knots(u[0], u[-1], k, delta)
-    n_coef = len(t) - k - 1
+    b = np.zeros((len(f), k + 1))
+    b[:, 0] = 1.0
+    for j in range(1, k + 1):
+        saved = np.zeros(len(f))
+        for r in range(j):
+            temp = b[:, r] / j
+            b[:, r] = saved + (r + 1 - f) * temp
+            saved = (f + j - r - 1) * temp
+        b[:, j] = saved
+    return b
+
+
+def _linspace(start: np.ndarray, stop: np.ndarray, num: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Concatenated ``np.linspace(start[i], stop[i], num[i])`` (same arithmetic) and each value's group."""
+    num = np.asarray(num, np.intp)
+    gid = np.repeat(np.arange(len(num)), num)
+    j = np.arange(len(gid)) - np.repeat(np.cumsum(num) - num, num)
+    div = np.maximum(num - 1, 1)
+    step = ((stop - start) / div)[gid]
+    y = j * step + start[gid]
+    last = np.cumsum(num)[num > 1] - 1
+    y[last] = stop[num > 1]
+    return y, gid
+
+
+def _penalised_many(curves: list[tuple[np.ndarray, np.ndarray, float]], k: int) -> list[BSpline | None]:
+    """P-spline fits of many open curves: min |y - B c|^2 + lam |D c|^2, D the third-difference operator.
+
+    ``curves`` holds (u, points, cutoff) per curve. The knot spacing is ``cutoff / _KNOTS_PER_CUTOFF``
+    and ``lam`` puts the half-power point of the penalty's transfer function
+    1 / (1 + lam (2 sin(w / 2))^(2q)) at wavelength ``cutoff``. The banded normal equations are assembled
+    directly from the uniform basis (each point touches k + 1 consecutive coefficients) for all curves
+    at once, as one block-diagonal banded system solved by a single banded Cholesky factorisation.
+    """
+    if not curves:
+        return []
+    n_pts = np.array([len(c[0]) for c in curves])
+    u = np.concatenate([c[0] for c in curves])
+    pts = np.concatenate([c[1] for c in curves])
+    gid = np.repeat(np.arange(len(curves)), n_pts)
+    u0 = np.array([c[0][0] for c in curves])
+    u1 = np.array([c[0][-1] for c in curves])
+    delta = np.array([c[2] for c in curves]) / _KNOTS_PER_CUTOFF
+    intervals = np.maximum(1, np.ceil((u1 - u0) / delta)).astype(np.intp)
+    step = (u1 - u0) / intervals  # knots t_j = u0 + step * j, j = -k .. intervals + k
+    n_coef = intervals + k
+    off = np.cumsum(n_coef) - n_coef
+    total = int(n_coef.sum())
     # the penalty's null space (polynomials of degree < q) must be pinned down by the points
-    q = min(_ORDER, len(u), n_coef - 1)
-    B = BSpline.design_matrix(np.clip(u, t[k], t[-k - 1]), t, k)
-    btb = (B.T @ B).tocsr()
-    if q >= 1:
-        w_c = 2 * np.pi / _KNOTS_PER_CUTOFF
-        lam = len(u) / n_coef / (2 * np.sin(w_c / 2)) ** (2 * q)
-        stencil = np.diff(np.eye(q + 1), n=q, axis=0)[0]  # e.g. [-1, 3, -3, 1] for q = 3
-        D = sparse.diags(stencil, np.arange(q + 1), shape=(n_coef - q, n_coef))
-        btb = btb + lam * (D.T @ D)
-    rhs = B.T @ pts
-    bw = max(k, q)
-    ab = np.zeros((bw + 1, n_coef))
-    for d in range(bw + 1):
-        ab[bw - d, d:] = btb.diagonal(d)
+    q = np.minimum(np.minimum(_ORDER, n_pts), n_coef - 1)
+    t_lo = u0 + step * 0
+    t_hi = u0 + step * intervals
+    h = (u0 + step) - t_lo
+    x = (np.clip(u, t_lo[gid], t_hi[gid]) - t_lo[gid]) / h[gid]
+    first = np.clip(np.floor(x), 0, intervals[gid] - 1).astype(np.intp)
+    vals = _uniform_basis(x - first, k)
+    cols0 = first + off[gid]
+    bw = k
+    # upper banded storage: ab[bw - d, j] = A[j - d, j]
+    a_idx, b_idx = np.triu_indices(k + 1)
+    flat = (bw - (b_idx - a_idx))[None, :] * total + cols0[:, None] + b_idx[None, :]
+    ab = np.bincount(
+        flat.ravel(), weights=(vals[:, a_idx] * vals[:, b_idx]).ravel(), minlength=(bw + 1) * total
+    )
+    ab = ab.reshape(bw + 1, total)
+    w_c = 2 * np.pi / _KNOTS_PER_CUTOFF
+    for qq in np.unique(q[q >= 1]):
+        sel = np.flatnonzero(q == qq)
+        lam = n_pts[sel] / n_coef[sel] / (2 * np.sin(w_c / 2)) ** (2 * qq)
+        stencil = np.diff(np.eye(qq + 1), n=qq, axis=0)[0]  # e.g. [-1, 3, -3, 1] for q = 3
+        n_rows = n_coef[sel] - qq
+        r = np.arange(n_rows.sum()) - np.repeat(np.cumsum(n_rows) - n_rows, n_rows)
+        base = np.repeat(off[sel], n_rows) + r
+        lam_r = np.repeat(lam, n_rows)
+        for d in range(qq + 1):
+            for a in range(qq + 1 - d):
+                ab[bw - d, base + a + d] += lam_r * stencil[a] * stencil[a + d]
+    cols = (cols0[:, None] + np.arange(k + 1)).ravel()
+    rhs = np.stack(
+        [np.bincount(cols, weights=(vals * pts[:, [i]]).ravel(), minlength=total) for i in range(3)], axis=1
+    )
     try:
         coef = solveh_banded(ab, rhs)
-    except np.linalg.LinAlgError:
-        return None
-    if not np.all(np.isfinite(coef)):
-        return None
-    return BSpline(t, coef, k)
+    except np.linalg.LinAlgError:  # some block is singular: solve block by block
+        coef = np.full_like(rhs, np.nan)
+        for i in range(len(curves)):
+            sl = slice(off[i], off[i] + n_coef[i])
+            try:
+                coef[sl] = solveh_banded(ab[:, sl], rhs[sl])
+            except np.linalg.LinAlgError:
+                pass
+    out: list[BSpline | None] = []
+    for i in range(len(curves)):
+        c = coef[off[i] : off[i] + n_coef[i]]
+        if not np.all(np.isfinite(c)):
+            out.append(None)
+            continue
+        t = u0[i] + step[i] * np.arange(-k, intervals[i] + k + 1)
+        out.append(BSpline.construct_fast(t, c, k))
+    return out
 
 
 def _penalised_periodic(
@@ -148,23 +226,73 @@ def fit_curve(points: np.ndarray, *, smoothing_mm: float, closed: bool = False) 
     CurveFit or None
         None when fewer than two distinct points remain.
     """
-    pts = np.asarray(points, float).reshape(-1, 3)
-    if len(pts) < 2:
-        return None
-    if closed:
-        pts = np.concatenate([pts, pts[:1]])
-    pts, u = _chord_parameter(pts)
-    if closed and len(pts) > 1:
-        period = u[-1]
-        pts, u = pts[:-1], u[:-1]
-    if len(pts) < 2:
-        return None
+    return fit_curves([points], smoothing_mm=[smoothing_mm], closed=[closed])[0]
+
+
+def fit_curves(
+    points: Sequence[np.ndarray], *, smoothing_mm: Sequence[float], closed: Sequence[bool] | None = None
+) -> list[CurveFit | None]:
+    """:func:`fit_curve` for many curves at once (open curves share one banded solve).
+
+    Parameters
+    ----------
+    points : sequence of (n_i, 3) float arrays, mm
+    smoothing_mm : sequence of float, mm
+        One smoothing length per curve.
+    closed : sequence of bool, optional
+        Default: all open.
+
+    Returns
+    -------
+    list of CurveFit or None
+        Each curve's fit exactly as :func:`fit_curve` would return it.
+    """
+    closed = [False] * len(points) if closed is None else list(closed)
     k = 5
-    cutoff = 2.0 * smoothing_mm
-    if not closed:
-        spl = _penalised(u, pts, cutoff, k)
-        return CurveFit(spl, float(u[0]), float(u[-1]), False, _degree(len(u))) if spl else None
-    spl = _penalised_periodic(u, pts, period, cutoff, k)
+    out: list[CurveFit | None] = [None] * len(points)
+    arrays = [np.asarray(p, float).reshape(-1, 3) for p in points]
+    for i, c in enumerate(closed):
+        if c and len(arrays[i]) >= 2:
+            out[i] = _fit_closed(arrays[i], float(smoothing_mm[i]), k)
+    todo = [i for i, c in enumerate(closed) if not c and len(arrays[i]) >= 2]
+    if not todo:
+        return out
+    # chord-length parameter of every open curve at once; repeated points are dropped
+    n = np.array([len(arrays[i]) for i in todo])
+    allp = np.concatenate([arrays[i] for i in todo])
+    steps = np.linalg.norm(np.diff(allp, axis=0), axis=1)
+    same = np.ones(len(allp), bool)
+    same[np.cumsum(n)[:-1]] = False  # a curve's first point
+    same[0] = False
+    moved = np.r_[False, steps > 1e-9]
+    keep = ~same | moved
+    cum = np.cumsum(np.where(same & moved, np.r_[0.0, steps], 0.0))
+    u_all = cum - np.repeat(cum[np.cumsum(n) - n], n)
+    gid = np.repeat(np.arange(len(todo)), n)[keep]
+    u_all, allp = u_all[keep], allp[keep]
+    bounds = np.r_[0, np.cumsum(np.bincount(gid, minlength=len(todo)))]
+    curves = []
+    idx = []
+    for j, i in enumerate(todo):
+        lo, hi = bounds[j], bounds[j + 1]
+        if hi - lo >= 2:
+            idx.append(i)
+            curves.append((u_all[lo:hi], allp[lo:hi], 2.0 * float(smoothing_mm[i])))
+    for i, (u, _p, _c), spl in zip(idx, curves, _penalised_many(curves, k), strict=True):
+        if spl is not None:
+            out[i] = CurveFit(spl, float(u[0]), float(u[-1]), False, _degree(len(u)))
+    return out
+
+
+def _fit_closed(pts: np.ndarray, smoothing_mm: float, k: int) -> CurveFit | None:
+    pts, u = _chord_parameter(np.concatenate([pts, pts[:1]]))
+    if len(pts) < 2:
+        return None
+    period = u[-1]
+    pts, u = pts[:-1], u[:-1]
+    if len(pts) < 2:
+        return None
+    spl = _penalised_periodic(u, pts, period, 2.0 * smoothing_mm, k)
     return CurveFit(spl, 0.0, float(period), True, _degree(len(u))) if spl is not None else None
 
 
@@ -208,3 +336,120 @@ def arc_length_samples(
         arc = np.linspace(0.0, length, n)
     u = np.interp(arc, s, ud)
     return arc, u, fit(u), fit(u, 1), fit(u, 2), fit(u, 3)
+
+
+class CurvePack:
+    """Many fitted curves evaluated together (uniform-knot B-splines, no Python loop per curve).
+
+    Parameters
+    ----------
+    fits : sequence of CurveFit or None
+        Curves from :func:`fit_curve` / :func:`fit_curves` (uniform knots); None entries take no samples.
+    """
+
+    def __init__(self, fits: Sequence[CurveFit | None]) -> None:
+        self.fits = list(fits)
+        ok = [f for f in self.fits if f is not None]
+        self.k = ok[0].spline.k if ok else 5
+        n_c = np.array([len(f.spline.c) if f is not None else 0 for f in self.fits], np.intp)
+        self._off = np.cumsum(n_c) - n_c
+        self._coef = np.concatenate([f.spline.c for f in ok]) if ok else np.zeros((0, 3))
+        k = self.k
+        t = [
+            (f.spline.t[k], f.spline.t[k + 1], len(f.spline.t) - 2 * k - 1) if f else (0, 1, 1)
+            for f in self.fits
+        ]
+        arr = np.array(t, float).reshape(-1, 3)
+        self._t0 = arr[:, 0]
+        self._h = arr[:, 1] - arr[:, 0]
+        self._nint = arr[:, 2].astype(np.intp)
+        self.u0 = np.array([f.u0 if f is not None else 0.0 for f in self.fits])
+        self.u1 = np.array([f.u1 if f is not None else 0.0 for f in self.fits])
+        self.closed = np.array([bool(f is not None and f.closed) for f in self.fits])
+        self.valid = np.array([f is not None for f in self.fits])
+        self._dcoef: dict[int, np.ndarray] = {}
+
+    def __call__(self, gid: np.ndarray, u: np.ndarray, nu: int = 0, *, chunk: int = 200_000) -> np.ndarray:
+        """Values (nu = 0) or nu-th derivatives, (m, 3), of curve ``gid[i]`` at parameter ``u[i]``."""
+        gid = np.asarray(gid, np.intp)
+        u = np.asarray(u, float)
+        k = self.k
+        if nu not in self._dcoef:  # differenced coefficients: the nu-th derivative's B-spline coefficients
+            h = np.repeat(self._h, np.diff(np.r_[self._off, len(self._coef)]))
+            d = self._coef
+            for _ in range(nu):
+                d = np.diff(d, axis=0, append=d[-1:]) / h[:, None]
+            self._dcoef[nu] = np.ascontiguousarray(d)
+        coef = self._dcoef[nu]
+        out = np.empty((len(u), 3))
+        for lo in range(0, len(u), chunk):
+            g, uu = gid[lo : lo + chunk], u[lo : lo + chunk]
+            x = (uu - self._t0[g]) / self._h[g]
+            first = np.clip(np.floor(x), 0, self._nint[g] - 1).astype(np.intp)
+            basis = _uniform_basis(x - first, k - nu)
+            idx = self._off[g] + first
+            acc = basis[:, :1] * coef[idx]
+            for m in range(1, k + 1 - nu):
+                acc += basis[:, m : m + 1] * coef[idx + m]
+            out[lo : lo + chunk] = acc
+        return out
+
+
+def arc_length_samples_many(
+    pack: CurvePack, step_mm: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`arc_length_samples` for every valid curve of ``pack`` at once.
+
+    Returns
+    -------
+    gid : (m,) int array
+        The curve of each sample (curves in order, samples in order along each).
+    arc, u, r, d1, d2, d3
+        As :func:`arc_length_samples`, concatenated over the curves.
+    """
+    sel = np.flatnonzero(pack.valid)
+    u0, u1 = pack.u0[sel], pack.u1[sel]
+    approx = u1 - u0
+    n_dense = np.maximum(np.ceil(approx / step_mm).astype(np.intp) * _DENSE, 16) * 2 + 1
+    ud, gl = _linspace(u0, u1, n_dense)
+    # long, dense runs per curve: scipy's compiled evaluation per curve is the fastest here
+    bounds = np.r_[0, np.cumsum(n_dense)]
+    d1 = (
+        np.concatenate([pack.fits[i](ud[bounds[j] : bounds[j + 1]], 1) for j, i in enumerate(sel)])
+        if len(sel)
+        else np.zeros((0, 3))
+    )
+    speed = np.linalg.norm(d1, axis=1)
+    h = ((u1 - u0) / (n_dense - 1))[gl]
+    start = np.cumsum(n_dense) - n_dense
+    j = np.arange(len(ud)) - start[gl]
+    # cumulative Simpson over pairs of sub-intervals, trapezoid for the odd midpoints (per curve)
+    even = np.flatnonzero((j % 2 == 0) & (j > 0))
+    simpson = h[even] / 3 * (speed[even - 2] + 4 * speed[even - 1] + speed[even])
+    cs = np.cumsum(simpson)
+    ge = gl[even]
+    firsts = np.r_[0, np.cumsum(np.bincount(ge, minlength=len(sel)))[:-1]]
+    cs = cs - np.repeat(cs[firsts] - simpson[firsts], np.bincount(ge, minlength=len(sel)))
+    s = np.zeros(len(ud))
+    s[even] = cs
+    odd = np.flatnonzero(j % 2 == 1)
+    s[odd] = s[odd - 1] + h[odd] / 2 * (speed[odd - 1] + speed[odd])
+    length = s[start + n_dense - 1]
+    closed = pack.closed[sel]
+    n_open = np.maximum(np.ceil(length / step_mm).astype(np.intp), 1) + 1
+    n_closed = np.maximum(np.ceil(length / step_mm).astype(np.intp), 3)
+    n = np.where(closed, n_closed, n_open)
+    arc, ga = _linspace(np.zeros(len(sel)), np.where(closed, length * (n - 1) / n, length), n)
+    if closed.any():  # closed curves: arange(n) * (length / n), not repeating the first point
+        jc = np.arange(len(arc)) - np.repeat(np.cumsum(n) - n, n)
+        cl = closed[ga]
+        arc[cl] = jc[cl] * (length / n)[ga[cl]]
+    # u = np.interp(arc, s, ud) within each curve
+    big = float(np.max(s)) + 1.0 if len(s) else 1.0
+    pos = np.searchsorted(s + gl * big, arc + ga * big, side="right") - 1
+    pos = np.clip(pos, start[ga], start[ga] + n_dense[ga] - 2)
+    u = (ud[pos + 1] - ud[pos]) / (s[pos + 1] - s[pos]) * (arc - s[pos]) + ud[pos]  # as np.interp
+    at_end = arc >= s[pos + 1]
+    u[at_end] = ud[pos + 1][at_end]
+    gg = sel[ga]
+    return gg, arc, u, pack(gg, u), pack(gg, u, 1), pack(gg, u, 2), pack(gg, u, 3)
