@@ -1,0 +1,504 @@
+"""``analyze_chunked``: the single-mask pipeline for masks larger than memory, on Dask.
+
+Stages (each a set of Dask tasks unless noted):
+
+1. *survey*: per chunk, the foreground count and the largest depth (city-block distance to background),
+   read with a small probe margin that doubles until no chunk saturates it;
+2. *thin*: per chunk, thinning with a halo of :data:`~vesselgeom.chunked.thinning.HALO_DEPTHS` depths,
+   keeping the core's skeleton voxels with their radius;
+3. *stitch* (in the client): one graph from the union of core voxels, split into components;
+   radius at every junction from a sub-volume around it (tasks); spur pruning per component;
+4. *trace*: branches in batches, each branch reading only its box plus a margin;
+5. *measure* (in the client): the same rows and tables as :func:`vesselgeom.analyze`.
+
+The client holds the skeleton voxels, the graph and the tables (in proportion to the skeleton, not the
+volume); each task holds one box.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import platform
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from typing import Any
+
+import numpy as np
+
+from vesselgeom import __version__
+from vesselgeom.centerline import Centerline
+from vesselgeom.chunked.sources import LazyVolume, open_lazy
+from vesselgeom.chunked.stitch import SkeletonVoxels, branch_max_radius, junction_radii, split_components
+from vesselgeom.chunked.thinning import (
+    HALO_DEPTHS,
+    chunk_boxes,
+    default_halo,
+    survey_chunk,
+    task_bytes_per_voxel,
+    thin_chunk,
+)
+from vesselgeom.chunked.tracing import BranchJob, trace_jobs
+from vesselgeom.errors import InputError
+from vesselgeom.graph import prune_spurs
+from vesselgeom.io.affine import orientation, voxel_sizes, voxel_volume
+from vesselgeom.measure import BranchContext, branch_row, junction_row, point_columns
+from vesselgeom.pipeline import CAUTION, Result, _free_end_at_edge
+from vesselgeom.settings import Settings
+from vesselgeom.tables import BRANCH_COLUMNS, JUNCTION_COLUMNS, POINT_COLUMNS, make_table
+
+__all__ = ["analyze_chunked", "PROCESS_OVERHEAD_MB", "BRANCHES_PER_TASK"]
+
+#: Resident memory of one idle Dask worker process (interpreter, numpy, scipy, scikit-image, dask),
+#: measured on the development machine; a local cluster's budget is for data beyond this.
+PROCESS_OVERHEAD_MB = 200
+
+#: Branches traced by one task (a task reads one branch's box at a time).
+BRANCHES_PER_TASK = 32
+
+_LOCAL_SCHEDULERS = ("synchronous", "sync", "single-threaded", "threads", "processes")
+_FIRST_PROBE = 16  # voxels, at most; chunk_size // 8 for small chunks
+
+
+def analyze_chunked(
+    source: Any,
+    *,
+    settings: Settings | None = None,
+    chunk_size: int = 256,
+    halo: int | None = None,
+    scheduler: Any = None,
+    memory_budget_mb: float | None = None,
+    spacing: float | tuple[float, float, float] | None = None,
+    **overrides: Any,
+) -> Result:
+    """Measure every branch of a vessel mask chunk by chunk, never holding the whole volume.
+
+    Parameters
+    ----------
+    source : path, zarr.Array, ndarray or LazyVolume
+        OME-Zarr (NGFF 0.4/0.5), a plain Zarr array (with ``spacing``), a NIfTI file (read lazily), or an
+        array (tests).
+    settings : Settings, optional
+        As for :func:`vesselgeom.analyze`; ``overrides`` change single fields.
+    chunk_size : int
+        Chunk core edge, voxels. Default 256.
+    halo : int, optional
+        Voxels read beyond each core for thinning. Default: ``HALO_DEPTHS`` (3) times the largest depth
+        (city-block distance to background, voxels) found by the survey, at least 2.
+    scheduler : None, str or distributed.Client
+        None: a local ``distributed`` cluster (one thread per worker process, memory limits from the
+        budget). "synchronous", "threads" or "processes": a local Dask scheduler in this process. Any
+        other string: the address of an existing Dask scheduler. A Client: used as is.
+    memory_budget_mb : float, optional
+        Memory for the workers together, MB. A local cluster gets ``n`` workers with
+        ``budget / n`` each (``PROCESS_OVERHEAD_MB`` of it for the process itself); a chunk whose
+        thinning task would need more than a worker's share is refused with the largest chunk size
+        that fits.
+    spacing : float or 3 floats, mm, optional
+        Voxel size for plain Zarr arrays and in-memory arrays.
+
+    Returns
+    -------
+    Result
+        The same tables as :func:`vesselgeom.analyze`; ``run["mode"] == "chunked"`` and
+        ``run["chunking"]`` records chunk size, halo, depth, chunk count, scheduler and budget.
+        ``volume`` is None (no whole mask exists), so ``Result.write`` skips the label volume and qc.png.
+    """
+    settings = (settings or Settings()).replace(**overrides) if overrides else settings or Settings()
+    if not isinstance(chunk_size, int | np.integer) or chunk_size < 8:
+        raise InputError(f"<chunked>: chunk_size must be an integer >= 8 voxels, got {chunk_size!r}")
+    if halo is not None and (not isinstance(halo, int | np.integer) or halo < 1):
+        raise InputError(f"<chunked>: halo must be a positive integer (voxels), got {halo!r}")
+    if memory_budget_mb is not None and not memory_budget_mb > 0:
+        raise InputError(f"<chunked>: memory_budget_mb must be positive, got {memory_budget_mb!r}")
+    t0 = time.perf_counter()
+    vol = open_lazy(source, spacing=spacing, label=settings.label, threshold=settings.threshold)
+    timings = {"open": time.perf_counter() - t0}
+    chunk_size = int(chunk_size)
+    boxes = chunk_boxes(vol.shape, chunk_size)
+    spacing_mm = voxel_sizes(vol.affine)
+    min_voxels = (
+        settings.min_component_mm3 / voxel_volume(vol.affine)
+        if settings.min_component_mm3 is not None
+        else settings.min_component_voxels
+    )
+    with _executor(scheduler, memory_budget_mb) as (compute, info):
+        t = time.perf_counter()
+        foreground, depth, probe = _survey(vol, boxes, chunk_size, settings, compute)
+        timings["survey"] = time.perf_counter() - t
+        if foreground == 0:
+            what = f"label {vol.label}" if vol.label is not None else "foreground"
+            raise InputError(
+                f"{vol.source}: mask is empty (no {what} voxels after label/threshold selection)"
+            )
+        halo_given = halo is not None
+        halo = default_halo(depth) if halo is None else int(halo)
+        _check_budget(info, chunk_size, halo, vol)
+
+        t = time.perf_counter()
+        vol_d = _shared(vol)
+        parts = compute(
+            [
+                _delayed(thin_chunk)(
+                    vol_d, lo, hi, halo=halo, min_voxels=min_voxels, fill_holes=settings.fill_holes
+                )
+                for lo, hi in boxes
+            ]
+        )
+        voxels = SkeletonVoxels.union(parts, vol.shape)
+        del parts
+        timings["thin"] = time.perf_counter() - t
+
+        t = time.perf_counter()
+        comps = split_components(voxels)
+        radii = _junction_radii(vol_d, comps, voxels, chunk_size, spacing_mm, settings, compute)
+        linear = vol.affine[:3, :3]
+        for comp in comps:
+            prune_spurs(
+                comp.graph,
+                linear=linear,
+                radius_at=lambda p: np.array([radii[tuple(row)] for row in np.asarray(p).tolist()]),
+                ratio=settings.prune_ratio,
+            )
+        timings["graph"] = time.perf_counter() - t
+
+        t = time.perf_counter()
+        plan = _plan(comps, voxels, spacing_mm)
+        jobs = [job for _, _, job in plan]
+        voxel_mm = float(np.mean(spacing_mm))
+        batches = [jobs[i : i + BRANCHES_PER_TASK] for i in range(0, len(jobs), BRANCHES_PER_TASK)]
+        traced = compute(
+            [_delayed(trace_jobs)(vol_d, b, voxel_mm=voxel_mm, settings=settings) for b in batches]
+        )
+        lines = [cl for batch in traced for cl in batch]
+        timings["trace"] = time.perf_counter() - t
+
+    t = time.perf_counter()
+    tables = _measure(comps, plan, lines, radii, vol.affine, spacing_mm, settings)
+    timings["measure"] = time.perf_counter() - t
+    notes = list(vol.warnings)
+    branches, points, junctions = tables
+    run = {
+        "software": "vesselgeom",
+        "version": __version__,
+        "caution": CAUTION,
+        "mode": "chunked",
+        "input": {
+            "source": vol.source,
+            "format": vol.kind,
+            "sha256": vol.sha256,
+            "shape": list(vol.shape),
+            "dtype": vol.dtype_in,
+            "units_in_file": vol.input_units,
+            "voxel_size_mm": [float(v) for v in spacing_mm],
+            "orientation": orientation(vol.affine),
+            "affine": vol.affine.tolist(),
+            "foreground_voxels": int(foreground),
+        },
+        "settings": settings.to_dict(),
+        "derived": {
+            "step_mm": settings.step_mm or settings.step_voxels * voxel_mm,
+            "curvature_floor_per_mm": settings.curvature_floor_per_voxel / voxel_mm,
+            "min_component_voxels": float(min_voxels),
+            "min_validated_radius_mm": settings.min_validated_radius_voxels * float(spacing_mm.max()),
+        },
+        "chunking": {
+            "chunk_size": chunk_size,
+            "halo": halo,
+            "halo_rule": "given" if halo_given else f"{HALO_DEPTHS} x largest depth (voxels), at least 2",
+            "largest_depth_voxels": int(depth),
+            "survey_probe_voxels": int(probe),
+            "chunks": len(boxes),
+            "skeleton_voxels": len(voxels.coords),
+            "scheduler": info["name"],
+            "workers": info["workers"],
+            "memory_budget_mb": memory_budget_mb,
+            "worker_memory_limit_mb": info["limit_mb"],
+        },
+        "counts": {"branches": len(branches), "junctions": len(junctions), "points": len(points)},
+        "timings_seconds": {k: round(v, 3) for k, v in timings.items()},
+        "warnings": notes,
+        "environment": {"python": platform.python_version(), "numpy": np.__version__},
+    }
+    return Result(branches, points, junctions, run, None)
+
+
+# --------------------------------------------------------------------------- scheduling
+
+
+def _delayed(func: Callable) -> Callable:
+    import dask
+
+    return dask.delayed(func, pure=True)
+
+
+def _shared(vol: LazyVolume) -> Any:
+    """The volume as one Dask node, so it is shipped to each worker once (not inside every task)."""
+    import dask
+
+    return dask.delayed(vol, name=f"lazy-volume-{vol.sha256[:16] or id(vol)}", traverse=False)
+
+
+@contextmanager
+def _executor(scheduler: Any, budget_mb: float | None) -> Iterator[tuple[Callable, dict]]:
+    """Yield ``compute(list_of_delayed) -> list`` and a description of where tasks run."""
+    try:
+        import dask
+    except ImportError:  # pragma: no cover - depends on the environment
+        raise InputError(
+            "<chunked>: dask is not installed; install the optional extra: pip install 'vesselgeom[chunked]'"
+        ) from None
+    info: dict[str, Any] = {"overhead_mb": 0}
+    if isinstance(scheduler, str) and scheduler in _LOCAL_SCHEDULERS:
+        workers = 1 if scheduler in ("synchronous", "sync", "single-threaded") else os.cpu_count() or 1
+        info.update(name=scheduler, workers=workers, limit_mb=budget_mb / workers if budget_mb else None)
+        yield (lambda tasks: list(dask.compute(*tasks, scheduler=scheduler))), info
+        return
+    from distributed import Client, LocalCluster
+
+    cluster = None
+    if scheduler is None:
+        workers = os.cpu_count() or 1
+        limit: Any = "auto"
+        if budget_mb is not None:
+            workers = max(1, min(workers, int(budget_mb // (2 * PROCESS_OVERHEAD_MB))))
+            limit = f"{budget_mb / workers:.0f}MiB"
+        cluster = LocalCluster(
+            n_workers=workers,
+            threads_per_worker=1,
+            processes=True,
+            memory_limit=limit,
+            dashboard_address=None,
+            silence_logs=logging.ERROR,
+        )
+        client = Client(cluster)
+        info.update(
+            name="local-distributed",
+            workers=workers,
+            limit_mb=budget_mb / workers if budget_mb else None,
+            overhead_mb=PROCESS_OVERHEAD_MB,
+        )
+    elif isinstance(scheduler, str):
+        client = Client(scheduler)
+        n = len(client.scheduler_info().get("workers", {}))
+        info.update(name=scheduler, workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
+    elif hasattr(scheduler, "compute") and hasattr(scheduler, "gather"):
+        client = scheduler
+        n = len(client.scheduler_info().get("workers", {}))
+        info.update(name="client", workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
+    else:
+        raise InputError(f"<chunked>: scheduler {scheduler!r} is not a scheduler name, address or Client")
+    try:
+        yield (lambda tasks: list(client.gather(client.compute(tasks)))), info
+    finally:
+        if client is not scheduler:
+            client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def _check_budget(info: dict, chunk_size: int, halo: int, vol: LazyVolume) -> None:
+    """Refuse a chunk whose thinning task needs more than a worker's share of the budget."""
+    limit = info.get("limit_mb")
+    if limit is None:
+        return
+    allowance = limit - info["overhead_mb"]
+    per_voxel = task_bytes_per_voxel(np.dtype(vol.dtype_in).itemsize)
+    need = (chunk_size + 2 * halo) ** 3 * per_voxel / 2**20
+    if need <= allowance:
+        return
+    side = int((max(allowance, 0) * 2**20 / per_voxel) ** (1 / 3)) - 2 * halo
+    hint = f"use --chunk-size {side} or less" if side >= 8 else "raise the memory budget"
+    raise InputError(
+        f"{vol.source}: a chunk of {chunk_size} voxels with a halo of {halo} needs about {need:.1f} MB per "
+        f"task but each worker has {allowance:.1f} MB of the budget; {hint}"
+    )
+
+
+# --------------------------------------------------------------------------- stages
+
+
+def _survey(
+    vol: LazyVolume, boxes: list, chunk_size: int, settings: Settings, compute: Callable
+) -> tuple[int, int, int]:
+    """Total foreground and largest depth; the probe doubles for chunks whose depth reached it."""
+    probe = min(_FIRST_PROBE, max(4, chunk_size // 8))
+    vol_d = _shared(vol)
+    todo = list(range(len(boxes)))
+    found: dict[int, Any] = {}
+    while True:
+        results = compute(
+            [
+                _delayed(survey_chunk)(vol_d, *boxes[i], probe=probe, fill_holes=settings.fill_holes)
+                for i in todo
+            ]
+        )
+        found.update(zip(todo, results, strict=True))
+        todo = [i for i in todo if found[i].saturated]
+        if not todo:
+            break
+        if probe >= 4 * chunk_size:
+            raise InputError(
+                f"{vol.source}: vessels are more than {probe} voxels deep, too wide for a chunk of "
+                f"{chunk_size}; raise the chunk size"
+            )
+        probe *= 2
+    foreground = sum(s.foreground for s in found.values())
+    depth = max((s.depth for s in found.values()), default=0)
+    return foreground, depth, probe
+
+
+def _junction_radii(
+    vol_d: Any,
+    comps: list,
+    voxels: SkeletonVoxels,
+    chunk_size: int,
+    spacing_mm: np.ndarray,
+    settings: Settings,
+    compute: Callable,
+) -> dict[tuple, float]:
+    """Radius (mm) at every junction node position, one task per chunk holding junctions."""
+    keys, positions, margins = [], [], []
+    for comp in comps:
+        for node in comp.graph.nodes.values():
+            if node.kind != "junction":
+                continue
+            pos = voxels.lookup(node.voxels)
+            r = float(voxels.radius[pos[pos >= 0]].max()) if np.any(pos >= 0) else 0.0
+            keys.append(tuple(node.position.tolist()))
+            positions.append(node.position)
+            margins.append(int(np.ceil(r / spacing_mm.min())) + 3)
+    if not keys:
+        return {}
+    positions_a = np.array(positions)
+    margins_a = np.array(margins)
+    cell = np.floor(positions_a / chunk_size).astype(int)
+    groups: dict[tuple, list[int]] = {}
+    for i, c in enumerate(map(tuple, cell.tolist())):
+        groups.setdefault(c, []).append(i)
+    order = sorted(groups)
+    results = compute(
+        [
+            _delayed(junction_radii)(
+                vol_d, positions_a[groups[c]], margins_a[groups[c]], fill_holes=settings.fill_holes
+            )
+            for c in order
+        ]
+    )
+    out: dict[tuple, float] = {}
+    for c, r in zip(order, results, strict=True):
+        for i, v in zip(groups[c], r, strict=True):
+            out[keys[i]] = float(v)
+    return out
+
+
+def _kind(graph: Any, b: Any) -> tuple[str, list[bool]]:
+    ends = [graph.nodes[n].kind if n is not None else None for n in (b.start, b.end)]
+    free = [k == "end" for k in ends]
+    if b.closed or (b.start is not None and b.start == b.end):
+        return "loop", free
+    if all(free):
+        return "isolated", free
+    if any(free):
+        return "terminal", free
+    return "internal", free
+
+
+def _plan(
+    comps: list, voxels: SkeletonVoxels, spacing_mm: np.ndarray
+) -> list[tuple[Any, BranchContext, BranchJob]]:
+    """Branch ids, node ids, flags and tracing jobs, numbered as the in-memory pipeline numbers them.
+
+    ``touches_image_edge`` uses the pipeline's own test (a free end within its radius plus a voxel of
+    an image face), with the radius at the end voxel from the thinning task.
+    """
+    plan = []
+    next_branch, next_node = 1, 1
+
+    def radius_at(ijk: np.ndarray) -> np.ndarray:
+        pos = voxels.lookup(np.rint(ijk).astype(np.int64))
+        return np.where(pos >= 0, voxels.radius[np.maximum(pos, 0)], 0.0)
+
+    for comp in comps:
+        graph = comp.graph
+        node_ids = {nid: next_node + i for i, nid in enumerate(sorted(graph.nodes))}
+        next_node += len(node_ids)
+        comp.node_ids = node_ids
+        for b in graph.branches:
+            kind, free = _kind(graph, b)
+            flags: tuple[str, ...] = ()
+            if comp.at_edge and _free_end_at_edge(
+                b.path, free, np.zeros(3), radius_at, float(spacing_mm.min()), voxels.shape
+            ):
+                flags = ("touches_image_edge",)
+            ctx = BranchContext(
+                next_branch, comp.component_id, kind, node_ids.get(b.start), node_ids.get(b.end), flags
+            )
+            job = BranchJob(b.path, b.closed, free[0], free[1], branch_max_radius(b, graph.nodes, voxels))
+            plan.append((b, ctx, job))
+            next_branch += 1
+    return plan
+
+
+def _measure(
+    comps: list,
+    plan: list,
+    lines: list[Centerline | None],
+    radii: dict[tuple, float],
+    affine: np.ndarray,
+    spacing_mm: np.ndarray,
+    settings: Settings,
+) -> tuple:
+    """The three tables, row by row as :func:`vesselgeom.pipeline.analyze_volume` builds them."""
+    voxel_mm = float(np.mean(spacing_mm))
+    branch_rows, point_parts, junction_rows = [], [], []
+    by_branch = {id(b): (ctx, cl) for (b, ctx, _), cl in zip(plan, lines, strict=True)}
+    for comp in comps:
+        graph = comp.graph
+        entries = [(b, *by_branch[id(b)]) for b in graph.branches]
+        for _, ctx, cl in entries:
+            branch_rows.append(
+                branch_row(
+                    cl, ctx, settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing_mm.max())
+                )
+            )
+            if cl is not None:
+                point_parts.append(point_columns(cl, ctx.branch_id))
+        for nid in sorted(graph.nodes):
+            node = graph.nodes[nid]
+            if node.kind != "junction":
+                continue
+            pos = node.position @ affine[:3, :3].T + affine[:3, 3]
+            ends = []
+            for b, ctx, cl in entries:
+                if b.start == nid:
+                    ends.append((ctx.branch_id, cl, True))
+                if b.end == nid:
+                    ends.append((ctx.branch_id, cl, False))
+            junction_rows.append(
+                junction_row(
+                    comp.node_ids[nid],
+                    comp.component_id,
+                    pos,
+                    radii[tuple(node.position.tolist())],
+                    ends,
+                    settings=settings,
+                )
+            )
+    branches = make_table(BRANCH_COLUMNS, _columns(branch_rows, BRANCH_COLUMNS))
+    points = make_table(POINT_COLUMNS, _concat(point_parts, POINT_COLUMNS))
+    junctions = make_table(JUNCTION_COLUMNS, _columns(junction_rows, JUNCTION_COLUMNS))
+    return branches, points, junctions
+
+
+def _columns(rows: list[dict], schema: Any) -> dict[str, list] | None:
+    if not rows:
+        return None
+    return {c.name: [r[c.name] for r in rows] for c in schema}
+
+
+def _concat(parts: list[dict[str, np.ndarray]], schema: Any) -> dict[str, np.ndarray] | None:
+    if not parts:
+        return None
+    return {c.name: np.concatenate([p[c.name] for p in parts]) for c in schema}
