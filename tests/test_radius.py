@@ -88,3 +88,16 @@ def test_no_boundary_gives_nan():
     # Documented: NaN when the mask has no boundary (no background voxel at all).
     bd = BoundaryDistance(np.ones((4, 4, 4), bool), np.eye(4))
     assert np.isnan(bd(np.zeros((2, 3)))).all()
+
+
+def test_boundary_distance_equals_scipy_edt_on_random_masks():
+    # reference: scipy.ndimage.distance_transform_edt with sampling= gives the distance from each
+    # foreground voxel centre to the nearest background voxel centre (anisotropic voxels too)
+    rng = np.random.default_rng(7)
+    for spacing in ((1.0, 1.0, 1.0), (0.5, 0.7, 1.2)):
+        mask = np.pad(ndimage.binary_opening(rng.random((18, 19, 20)) > 0.35), 1)
+        aff = np.diag([*spacing, 1.0])
+        ijk = np.argwhere(mask)
+        got = BoundaryDistance(mask, aff).at_index(ijk)
+        ref = ndimage.distance_transform_edt(mask, sampling=spacing)[mask]
+        np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12)

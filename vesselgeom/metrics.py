@@ -65,18 +65,15 @@ def sum_of_angles(points: np.ndarray, *, closed: bool = False, straight: np.ndar
     if len(p) < 4:
         return float("nan")
     seg = np.diff(p, axis=0)
-    length = (
-        float(np.linalg.norm(seg, axis=1).sum())
-        if not closed
-        else float(np.linalg.norm(seg[: len(points)], axis=1).sum())
-    )
+    seg_len = _row_norm(seg)
+    length = float(seg_len.sum()) if not closed else float(seg_len[: len(points)].sum())
     t1, t2, t3 = seg[:-2], seg[1:-1], seg[2:]
-    u1 = t1 / np.linalg.norm(t1, axis=1, keepdims=True)
-    u2 = t2 / np.linalg.norm(t2, axis=1, keepdims=True)
+    u1 = t1 / seg_len[:-2, None]
+    u2 = t2 / seg_len[1:-1, None]
     ip = np.arccos(np.clip(np.einsum("ij,ij->i", u1, u2), -1.0, 1.0))
-    c1, c2 = np.cross(t1, t2), np.cross(t2, t3)
-    n1, n2 = np.linalg.norm(c1, axis=1), np.linalg.norm(c2, axis=1)
-    tiny = 1e-12 * np.linalg.norm(t2, axis=1) ** 2
+    c1, c2 = _row_cross(t1, t2), _row_cross(t2, t3)
+    n1, n2 = _row_norm(c1), _row_norm(c2)
+    tiny = 1e-12 * seg_len[1:-1] ** 2
     ok = (n1 > tiny) & (n2 > tiny)
     if straight is not None:
         st = np.asarray(straight, bool)
@@ -89,6 +86,21 @@ def sum_of_angles(points: np.ndarray, *, closed: bool = False, straight: np.ndar
     if closed:
         cp = cp[: len(points)]
     return float(cp.sum() / length) if length > 0 else float("nan")
+
+
+def _row_norm(v: np.ndarray) -> np.ndarray:
+    """Row lengths of (n, 3) v: the same sums, in the same order, as ``np.linalg.norm(v, axis=1)``."""
+    x, y, z = v[:, 0], v[:, 1], v[:, 2]
+    return np.sqrt(x * x + y * y + z * z)
+
+
+def _row_cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row cross products of (n, 3) arrays with the same products as :func:`numpy.cross`."""
+    out = np.empty((len(a), 3))
+    out[:, 0] = a[:, 1] * b[:, 2] - a[:, 2] * b[:, 1]
+    out[:, 1] = a[:, 2] * b[:, 0] - a[:, 0] * b[:, 2]
+    out[:, 2] = a[:, 0] * b[:, 1] - a[:, 1] * b[:, 0]
+    return out
 
 
 def count_inflections(
