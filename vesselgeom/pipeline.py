@@ -233,7 +233,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             else:
                 kind = "internal"
             flags = ()
-            if comp.touches_border and _free_end_at_edge(
+            if comp.touches_border and free_end_at_edge(
                 b.path, free, comp.offset, boundary.at_index, float(spacing.min()), volume.shape
             ):
                 flags = ("touches_image_edge",)
@@ -263,17 +263,18 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             )
             if cl is not None:
                 point_parts.append(point_columns(cl, ctx.branch_id))
+        ends_at: dict[int, list] = {}  # branch ends per node, in branch order
+        for cl, ctx, b in zip(lines, contexts, graph.branches, strict=True):
+            if b.start is not None:
+                ends_at.setdefault(b.start, []).append((ctx.branch_id, cl, True))
+            if b.end is not None:
+                ends_at.setdefault(b.end, []).append((ctx.branch_id, cl, False))
         for nid in sorted(graph.nodes):
             node = graph.nodes[nid]
             if node.kind != "junction":
                 continue
             pos = node.position @ aff[:3, :3].T + aff[:3, 3]
-            ends = []
-            for cl, ctx, b in zip(lines, contexts, graph.branches, strict=True):
-                if b.start == nid:
-                    ends.append((ctx.branch_id, cl, True))
-                if b.end == nid:
-                    ends.append((ctx.branch_id, cl, False))
+            ends = ends_at.get(nid, [])
             junction_rows.append(
                 junction_row(
                     node_ids[nid],
@@ -323,7 +324,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
     return Result(branches, points, junctions, run, volume)
 
 
-def _free_end_at_edge(path, free, offset, radius_at, voxel_mm, shape) -> bool:
+def free_end_at_edge(path, free, offset, radius_at, voxel_mm, shape) -> bool:
     """Whether a free end of the branch lies within its own radius (+1 voxel) of the image's faces.
 
     Such an end is where the field of view cut the vessel, so the branch is truncated: its length and

@@ -44,7 +44,7 @@ from vesselgeom.errors import InputError
 from vesselgeom.graph import prune_spurs
 from vesselgeom.io.affine import orientation, voxel_sizes, voxel_volume
 from vesselgeom.measure import BranchContext, branch_row, junction_row, point_columns
-from vesselgeom.pipeline import CAUTION, Result, _free_end_at_edge
+from vesselgeom.pipeline import CAUTION, Result, free_end_at_edge
 from vesselgeom.settings import Settings
 from vesselgeom.tables import BRANCH_COLUMNS, JUNCTION_COLUMNS, POINT_COLUMNS, make_table
 
@@ -250,6 +250,11 @@ def _executor(scheduler: Any, budget_mb: float | None) -> Iterator[tuple[Callabl
             "<chunked>: dask is not installed; install the optional extra: pip install 'vesselgeom[chunked]'"
         ) from None
     info: dict[str, Any] = {"overhead_mb": 0}
+    if scheduler is None and budget_mb is not None and budget_mb < 2 * PROCESS_OVERHEAD_MB:
+        # a worker process alone would exceed the budget, and distributed would pause it for good:
+        # run the tasks in this process instead (their memory is bounded by the chunk size)
+        scheduler = "synchronous"
+        info["note"] = "budget below one worker process; tasks ran in this process"
     if isinstance(scheduler, str) and scheduler in _LOCAL_SCHEDULERS:
         workers = 1 if scheduler in ("synchronous", "sync", "single-threaded") else os.cpu_count() or 1
         info.update(name=scheduler, workers=workers, limit_mb=budget_mb / workers if budget_mb else None)
@@ -428,7 +433,7 @@ def _plan(
         for b in graph.branches:
             kind, free = _kind(graph, b)
             flags: tuple[str, ...] = ()
-            if comp.at_edge and _free_end_at_edge(
+            if comp.at_edge and free_end_at_edge(
                 b.path, free, np.zeros(3), radius_at, float(spacing_mm.min()), voxels.shape
             ):
                 flags = ("touches_image_edge",)
