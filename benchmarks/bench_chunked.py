@@ -43,34 +43,9 @@ def _rss_mb() -> float:
 
 def network_tubes(shape, *, n_trees, depth, seed, r_max=6.0, r_min=1.5):
     """Polylines (world mm = index, 1 mm voxels) and radii of random trees filling ``shape``."""
-    rng = np.random.default_rng(seed)
-    extent = np.asarray(shape, float)
-    polys, radii = [], []
+    from vesselgeom.phantoms import network_polylines
 
-    def grow(start, direction, rad, level):
-        normal = np.cross(direction, rng.normal(size=3))
-        normal /= np.linalg.norm(normal)
-        kappa = max(rng.uniform(0.0, 1.0 / (8 * rad)), 1e-6)
-        s = np.arange(0.0, rng.uniform(6, 14) * rad + 0.1, 0.1)
-        th = kappa * s
-        pts = start + (np.sin(th)[:, None] * direction + (1 - np.cos(th))[:, None] * normal) / kappa
-        polys.append(pts)
-        radii.append(rad)
-        end_dir = np.cos(th[-1]) * direction + np.sin(th[-1]) * normal
-        child = rad / 2 ** (1 / 3)
-        if level + 1 >= depth or child < r_min:
-            return
-        perp = np.cross(end_dir, rng.normal(size=3))
-        perp /= np.linalg.norm(perp)
-        for sign in (1, -1):
-            ang = np.deg2rad(rng.uniform(25, 50))
-            d = np.cos(ang) * end_dir + sign * np.sin(ang) * perp
-            grow(pts[-1], d / np.linalg.norm(d), child, level + 1)
-
-    for _ in range(n_trees):
-        d = rng.normal(size=3)
-        grow(rng.uniform(0.1, 0.9, size=3) * extent, d / np.linalg.norm(d), r_max, 0)
-    return polys, radii
+    return network_polylines(shape, n_trees=n_trees, depth=depth, radius_mm=(r_min, r_max), seed=seed)
 
 
 def write_network_zarr(path, shape, *, chunk, n_trees, depth, seed):

@@ -39,6 +39,7 @@ __all__ = [
     "tree_phantom",
     "random_rotation",
     "network_phantom",
+    "network_polylines",
 ]
 
 Vec = Callable[[np.ndarray], np.ndarray]
@@ -416,45 +417,36 @@ def _union(curves, radii, spacing, rotation, *, n_junctions: int) -> Phantom:
     return Phantom(mask, affine, truth, n_junctions, tuple(curves))
 
 
-def network_phantom(
-    shape: tuple[int, int, int] = (128, 128, 128),
+def network_polylines(
+    extent_mm: Sequence[float],
     *,
-    spacing: Sequence[float] = (1.0, 1.0, 1.0),
     n_trees: int = 8,
     depth: int = 5,
-    radius_voxels: tuple[float, float] = (1.0, 5.0),
+    radius_mm: tuple[float, float] = (1.0, 5.0),
     undulation_radii: float = 0.0,
+    step_mm: float = 0.1,
     seed: int = 0,
-) -> tuple[np.ndarray, np.ndarray]:
-    """A synthetic vascular network filling a box: random trees of gently curved tubes.
+) -> tuple[list[np.ndarray], list[float]]:
+    """Polylines (world mm, box from 0 to ``extent_mm``) and radii of random vessel trees.
 
     Each tree starts at a random point with a random direction; every segment is a circular arc
     (curvature up to 1/(8 r)) of length 6-14 radii; children leave at 25-50 degrees with Murray's-law
     radii (r / 2^(1/3)) until ``depth`` levels or the minimum radius. ``undulation_radii`` > 0 adds a
-    lateral sine wave of that amplitude (in radii) and a wavelength of 12 radii to every segment, making
-    the network more tortuous without changing its radii. Segments leaving the box are kept (they are
-    clipped by the grid, as a field of view clips real vessels).
-
-    Returns
-    -------
-    mask : bool array of ``shape``
-    affine : (4, 4) float array, axis-aligned with the given spacing
+    lateral sine wave of that amplitude (in radii) and a wavelength of about 12 radii to every segment,
+    making the network more tortuous without changing its radii. Points are ``step_mm`` apart.
     """
     rng = np.random.default_rng(seed)
-    sp = np.asarray(spacing, float)
-    affine = np.diag([*sp, 1.0])
-    extent = np.asarray(shape) * sp
+    extent = np.asarray(extent_mm, float)
     polys: list[np.ndarray] = []
     radii: list[float] = []
-    vox = float(sp.min())
-    r_max, r_min = radius_voxels[1] * vox, radius_voxels[0] * vox
+    r_min, r_max = radius_mm
 
     def arc(start, direction, length, rad):
         # circular arc in a random plane containing the direction
         normal = np.cross(direction, rng.normal(size=3))
         normal /= np.linalg.norm(normal)
         kappa = rng.uniform(0.0, 1.0 / (8 * rad))
-        s = np.arange(0.0, length + 0.1 * vox, 0.1 * vox)
+        s = np.arange(0.0, length + step_mm, step_mm)
         kappa = max(kappa, 1e-6)
         th = kappa * s
         pts = start + (np.sin(th)[:, None] * direction + (1 - np.cos(th))[:, None] * normal) / kappa
@@ -484,5 +476,40 @@ def network_phantom(
         start = rng.uniform(0.15, 0.85, size=3) * extent
         direction = rng.normal(size=3)
         grow(start, direction / np.linalg.norm(direction), r_max, 0)
+    return polys, radii
+
+
+def network_phantom(
+    shape: tuple[int, int, int] = (128, 128, 128),
+    *,
+    spacing: Sequence[float] = (1.0, 1.0, 1.0),
+    n_trees: int = 8,
+    depth: int = 5,
+    radius_voxels: tuple[float, float] = (1.0, 5.0),
+    undulation_radii: float = 0.0,
+    seed: int = 0,
+) -> tuple[np.ndarray, np.ndarray]:
+    """A synthetic vascular network filling a box: :func:`network_polylines` voxelised.
+
+    Radii are given in voxels of the finest axis. Segments leaving the box are kept (they are clipped
+    by the grid, as a field of view clips real vessels).
+
+    Returns
+    -------
+    mask : bool array of ``shape``
+    affine : (4, 4) float array, axis-aligned with the given spacing
+    """
+    sp = np.asarray(spacing, float)
+    affine = np.diag([*sp, 1.0])
+    vox = float(sp.min())
+    polys, radii = network_polylines(
+        np.asarray(shape) * sp,
+        n_trees=n_trees,
+        depth=depth,
+        radius_mm=(radius_voxels[0] * vox, radius_voxels[1] * vox),
+        undulation_radii=undulation_radii,
+        step_mm=0.1 * vox,
+        seed=seed,
+    )
     mask = voxelize_tubes(polys, radii, affine, tuple(int(v) for v in shape))
     return mask, affine
