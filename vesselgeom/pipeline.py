@@ -147,7 +147,9 @@ def analyze(
     >>> len(res.branches), res.branches.loc[0, "kind"]
     (1, 'isolated')
     """
-    settings = (settings or Settings()).replace(**overrides) if overrides else settings or Settings()
+    settings = settings or Settings()
+    if overrides:
+        settings = settings.replace(**overrides)
     t0 = time.perf_counter()
     if isinstance(source, np.ndarray):
         volume = volume_from_array(
