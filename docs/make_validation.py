@@ -85,8 +85,9 @@ not reported is {s.curvature_floor_per_voxel} per voxel.
   very different tortuosity: weigh small radius differences between groups that differ in tortuosity
   accordingly.
 - Accuracy is validated for radii of at least 2 voxels (of the coarsest axis); branches whose mean
-  radius is below that carry the flag `radius_below_validated`. Junction regions distort the centreline
-  for about a radius; summaries leave out one smoothing scale at each end.
+  radius is below that carry the flag `radius_below_validated`. These phantoms have no junctions; the
+  junction handling (points within a junction's radius plus one scale left out, a straight stub to the
+  junction) is tested on the Y phantom in `tests/test_pipeline.py` (angles within 3 degrees).
 
 Research use only; not a medical device.
 """

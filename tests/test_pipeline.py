@@ -184,3 +184,17 @@ def test_edge_flag_marks_only_branches_cut_by_the_field_of_view():
     assert len(res.branches) == 3 and flagged.sum() == 1
     parent = res.branches.loc[flagged].iloc[0]
     assert min(parent["start_x_mm"], parent["end_x_mm"]) < -15.0  # the arm towards -x
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_y_bifurcation_angles_and_straight_arms(seed):
+    # Murray's-law symmetric optimum (Murray 1926, METHODS.md): daughters at 37.47 degrees from the
+    # parent's direction, so 74.9 degrees between them and 142.5 degrees between parent and each daughter
+    # (measured between directions pointing away from the junction). Arms are straight: curvature ~ 0.
+    ph = P.y_phantom(2.0, spacing=(0.5, 0.5, 0.5), rotation=P.random_rotation(seed, flip=bool(seed % 2)))
+    res = vg.analyze(ph.mask, affine=ph.affine)
+    angles = sorted(float(p.split(":")[1]) for p in res.junctions.loc[0, "angles_deg"].split(";"))
+    assert angles[0] == pytest.approx(74.9, abs=3.0)
+    assert angles[1] == pytest.approx(142.5, abs=3.0) and angles[2] == pytest.approx(142.5, abs=3.0)
+    assert (res.branches["max_curvature_per_mm"] < 0.02).all()
+    assert (res.branches["inflection_count"] == 0).all()

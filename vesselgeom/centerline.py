@@ -131,8 +131,13 @@ def _extend_free_ends_many(
     boundary: BoundaryDistance,
     voxel: float,
     settings: Settings,
+    targets: dict[tuple[int, int], np.ndarray] | None = None,
 ) -> tuple[list[CurveFit | None], np.ndarray]:
     """Replace the last ``scale`` of each terminal end by a straight stub reaching the axis end.
+
+    ``targets`` maps (branch, side) of junction ends whose near-junction points were left out to the
+    junction position: those ends get a straight stub along the end tangent up to the junction's
+    projection on it, instead of following the mask.
 
     Thinning stops a round-ended vessel's skeleton short of the axis end, and a spline is least
     constrained over its last smoothing length. From the point one scale inside the end, along the tangent
@@ -143,12 +148,13 @@ def _extend_free_ends_many(
     """
     fits = list(pack.fits)
     ext = np.zeros((len(fits), 2))
+    targets = targets or {}
     ends = [
         (i, side)
         for i, (b, f) in enumerate(zip(branches, fits, strict=True))
         if f is not None and not b.closed
         for side, free in ((0, b.free_start), (1, b.free_end))
-        if free
+        if free or (i, side) in targets
     ]
     if not ends:
         return fits, ext
@@ -179,6 +185,9 @@ def _extend_free_ends_many(
     frac = d[j] + (vals[j] - 0.5) / (vals[j] - vals[i]) * (d[i] - d[j])
     exit_d[hit] = np.where(at0, 0.0, frac)
     stub_len = np.maximum(exit_d - r_a, 0.0)
+    for e, key in enumerate(ends):
+        if key in targets:  # up to the junction's projection on the end tangent
+            stub_len[e] = max(float(np.dot(targets[key] - p_a[e], direction[e])), 0.0)
     stubs: dict[tuple[int, int], np.ndarray] = {}
     for e, (b_i, s_i) in enumerate(ends):
         n = max(int(np.ceil(stub_len[e] / (0.5 * voxel))), 1)
@@ -220,6 +229,46 @@ def _extend_free_ends_many(
     return fits, ext
 
 
+def _cut_near_junctions(
+    branches: list[BranchInput], r_all: list[np.ndarray], scales: np.ndarray, settings: Settings
+) -> tuple[list[np.ndarray], dict[tuple[int, int], np.ndarray]]:
+    """Leave out the points of each junction end that lie inside the junction region.
+
+    Within about a radius of a junction the mask's cross-section is the union of several vessels, so
+    both the skeleton and the recentred points there are pulled towards the other branches, which bends
+    every branch near its junctions (a spurious curvature and biased branch angles). Points closer to
+    the junction position than its radius plus ``junction_cut_radii`` scales are dropped before fitting
+    (when enough of the branch remains); the end is later joined to the junction by a straight stub.
+    Returns the paths to fit and, per cut end, the junction position.
+    """
+    paths, targets = [], {}
+    for i, (b, r) in enumerate(zip(branches, r_all, strict=True)):
+        path = b.path
+        if b.closed or len(path) < 4 or settings.junction_cut_radii <= 0:
+            paths.append(path)
+            continue
+        lo, hi = 0, len(path)
+        for side, free in ((0, b.free_start), (1, b.free_end)):
+            if free:
+                continue
+            node = path[0] if side == 0 else path[-1]
+            r_node = r[0] if side == 0 else r[-1]
+            cut = (r_node if np.isfinite(r_node) else 0.0) + settings.junction_cut_radii * scales[i]
+            far = np.linalg.norm(path - node, axis=1) >= cut
+            if side == 0:
+                k = int(np.argmax(far)) if far.any() else len(path)
+                new_lo, new_hi = k, hi
+            else:
+                k = len(path) - int(np.argmax(far[::-1])) if far.any() else 0
+                new_lo, new_hi = lo, k
+            kept = path[new_lo:new_hi]
+            if len(kept) >= 4 and np.linalg.norm(kept[-1] - kept[0]) >= 2 * scales[i]:
+                lo, hi = new_lo, new_hi
+                targets[(i, side)] = node
+        paths.append(path[lo:hi])
+    return paths, targets
+
+
 def trace_centerlines(
     branches: list[BranchInput],
     *,
@@ -257,7 +306,8 @@ def trace_centerlines(
     scales = np.where(lens == 0, floor_scale, scales)
     closed = [b.closed for b in branches]
     smoothing = settings.smoothing_radii * scales
-    fits = fit_curves([b.path for b in branches], smoothing_mm=smoothing, closed=closed)
+    paths, targets = _cut_near_junctions(branches, r_all, scales, settings)
+    fits = fit_curves(paths, smoothing_mm=smoothing, closed=closed)
 
     for _ in range(settings.recentre_passes):
         pack = CurvePack(fits)
@@ -276,7 +326,9 @@ def trace_centerlines(
         ]
 
     pack = CurvePack(fits)
-    fits, ext = _extend_free_ends_many(pack, branches, scales, section, boundary, voxel_mm, settings)
+    fits, ext = _extend_free_ends_many(
+        pack, branches, scales, section, boundary, voxel_mm, settings, targets=targets
+    )
     pack = CurvePack(fits)
     gid, arc, _u, r, d1, d2, d3 = arc_length_samples_many(pack, step)
     floor = settings.curvature_floor_per_voxel / voxel_mm

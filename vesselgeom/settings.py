@@ -70,6 +70,11 @@ class Settings:
         maxima and the binormals at those maxima point in opposite directions. Default 0.5.
     inflection_end_radii : float
         Minima within this many radii of a branch end are not counted. Default 2.0.
+    junction_cut_radii : float
+        Centreline points closer to a junction than its radius plus this many scales are left out of
+        the fit, and the branch is joined to the junction by a straight stub along its end tangent: the
+        junction region (the union of several vessels) pulls every branch towards the others. Default
+        1.0; 0 disables the cut.
     min_validated_radius_voxels : float
         Branches whose mean radius is below this many voxels (of the coarsest voxel axis) get the flag
         ``radius_below_validated``: below it the accuracy in ``docs/validation.md`` has not been shown.
@@ -97,6 +102,7 @@ class Settings:
     inflection_end_radii: float = 2.0
     junction_angle_radii: float = 2.0
     min_validated_radius_voxels: float = 2.0
+    junction_cut_radii: float = 1.0
 
     def __post_init__(self) -> None:
         positive = [
