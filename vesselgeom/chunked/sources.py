@@ -20,7 +20,13 @@ import numpy as np
 
 from vesselgeom.errors import InputError, VesselgeomWarning
 from vesselgeom.io.affine import affine_from_spacing, check_spacing
-from vesselgeom.io.volume import _array_sha256, _check_label, _check_threshold, _squeeze_shape
+from vesselgeom.io.volume import (
+    _array_sha256,
+    _check_label,
+    _check_threshold,
+    _squeeze_shape,
+    select_foreground,
+)
 
 __all__ = ["LazyVolume", "open_lazy"]
 
@@ -112,39 +118,7 @@ def _foreground(block: np.ndarray, label: int | None, threshold: float | None, s
     The rules are the same; the two checks that need the whole image (the label occurs somewhere; the
     image is not all NaN) are made by the caller over all boxes.
     """
-    kind = block.dtype.kind
-    if kind == "b":
-        if label is None and threshold is None:
-            return block
-        block, kind = block.view(np.uint8), "u"
-    if kind in "iu":
-        if label is not None:
-            info = np.iinfo(block.dtype)
-            return block == label if info.min <= label <= info.max else np.zeros(block.shape, bool)
-        if threshold is not None:
-            return block >= threshold
-        return block != 0
-    if kind == "f":
-        if threshold is not None:
-            return block >= threshold
-        nan = np.isnan(block)
-        if label is not None:
-            if not np.all(nan | (np.isfinite(block) & (np.floor(block) == block))):
-                raise InputError(
-                    f"{source}: label given but the float image has fractional values; "
-                    "pass --threshold T instead"
-                )
-            return block == label
-        ones = block == 1
-        if not np.all(ones | (block == 0) | nan):
-            raise InputError(
-                f"{source}: float image with non-binary values; "
-                "pass --threshold T (e.g. 0.5 for a probability map)"
-            )
-        return ones
-    raise InputError(
-        f"{source}: image dtype {block.dtype} is not supported; pass a bool, integer or float image"
-    )
+    return select_foreground(block, label=label, threshold=threshold, source=source, whole_image=False)
 
 
 def _store_sha256(path: Path) -> str:

@@ -166,10 +166,10 @@ def _check_threshold(threshold: object, *, source: str) -> float:
     return float(threshold)
 
 
-def _select_label_int(array: np.ndarray, label: int, *, source: str) -> np.ndarray:
+def _select_label_int(array: np.ndarray, label: int, *, source: str, whole_image: bool) -> np.ndarray:
     info = np.iinfo(array.dtype)
     mask = array == label if info.min <= label <= info.max else np.zeros(array.shape, dtype=bool)
-    if not mask.any():
+    if whole_image and not mask.any():
         raise InputError(
             f"{source}: label {label} is not in the image "
             f"({_list_labels(np.unique(array))}); pass one of those"
@@ -190,6 +190,7 @@ def select_foreground(
     label: int | None = None,
     threshold: float | None = None,
     source: str = "<array>",
+    whole_image: bool = True,
 ) -> np.ndarray:
     """Turn an image into a boolean foreground mask.
 
@@ -203,6 +204,10 @@ def select_foreground(
         Select voxels ``>= threshold``; NaN voxels are background. Not together with `label`.
     source : str
         File path or ``"<array>"``, used to start error messages.
+    whole_image : bool
+        True (default) when `array` is the whole image. False for one block of a larger image
+        (chunked processing): the two checks that need the whole image (the label occurs somewhere;
+        a float image is not all NaN) are then left to the caller.
 
     Returns
     -------
@@ -249,13 +254,13 @@ def select_foreground(
         array, kind = array.view(np.uint8), "u"
     if kind in "iu":
         if label is not None:
-            return _select_label_int(array, label, source=source)
+            return _select_label_int(array, label, source=source, whole_image=whole_image)
         if threshold is not None:
             return array >= threshold
         return array != 0
     if kind == "f":
         nan = np.isnan(array)
-        if nan.all():
+        if whole_image and nan.all():
             raise InputError(f"{source}: image is all NaN; check that the file holds a segmentation")
         if threshold is not None:
             return array >= threshold  # NaN >= t is False: NaN voxels are background
@@ -266,7 +271,7 @@ def select_foreground(
                     "pass --threshold T instead"
                 )
             mask = array == label
-            if not mask.any():
+            if whole_image and not mask.any():
                 present = np.unique(array[~nan]).astype(np.int64)
                 raise InputError(
                     f"{source}: label {label} is not in the image "
