@@ -210,29 +210,13 @@ def _open(source: Any, spacing: Any) -> LazyVolume:
 
 
 def _open_nifti(path: str) -> LazyVolume:
-    import nibabel as nib
+    from vesselgeom.io.nifti import file_sha256, open_nifti
 
-    from vesselgeom.io.nifti import _READ_ERRORS, _reason, _spatial_units, _world_affine, file_sha256
-
-    file = Path(path)
-    if not file.exists():
-        raise InputError(f"{path}: no such file; check the path")
-    if file.is_dir():
+    if Path(path).is_dir():
         raise InputError(f"{path}: a folder without Zarr metadata; pass a .zarr store or a NIfTI file")
-    try:
-        img = nib.load(path)
-    except _READ_ERRORS as exc:
-        raise InputError(
-            f"{path}: not a readable NIfTI or Zarr input ({_reason(exc)}); pass .nii, .nii.gz or .zarr"
-        ) from exc
-    if not isinstance(img, nib.Nifti1Image):
-        raise InputError(f"{path}: not a single-file NIfTI image; convert it to .nii or .nii.gz")
+    img, shape, units, affine, found = open_nifti(path)
     full = tuple(int(n) for n in img.shape)
-    shape = _squeeze_shape(full, source=path)
-    found: list[str] = []
-    units, factor = _spatial_units(img.header, source=path, found=found)
-    affine = _world_affine(img, factor, source=path, found=found)
     return LazyVolume(
         img.dataobj, (), shape, affine, path, "nifti", units, np.dtype(img.get_data_dtype()).name,
-        sha256=file_sha256(file, source=path), warnings=tuple(found), suffix=(0,) * (len(full) - 3),
+        sha256=file_sha256(path), warnings=tuple(found), suffix=(0,) * (len(full) - 3),
     )  # fmt: skip

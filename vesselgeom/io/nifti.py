@@ -11,6 +11,7 @@ import hashlib
 import os
 import zlib
 from pathlib import Path
+from typing import Any
 
 import nibabel as nib
 import numpy as np
@@ -21,7 +22,7 @@ from vesselgeom.errors import AffineError, InputError
 from vesselgeom.io.affine import _affine_problem, affine_from_spacing, check_spacing
 from vesselgeom.io.volume import Volume, _build_volume, _squeeze_shape
 
-__all__ = ["load_nifti", "file_sha256"]
+__all__ = ["load_nifti", "open_nifti", "file_sha256"]
 
 #: NIfTI spatial unit label (nibabel) -> (Volume.input_units, factor to mm).
 _UNITS_TO_MM = {
@@ -113,6 +114,35 @@ def _world_affine(img: nib.Nifti1Image, factor: float, *, source: str, found: li
     return fallback
 
 
+def open_nifti(source: str) -> tuple[Any, tuple[int, int, int], str, np.ndarray, list[str]]:
+    """Open a NIfTI file without reading its data: image, 3D shape, units, affine in mm, warnings.
+
+    Shared by :func:`load_nifti` and lazy (chunked) reading, so both apply the same checks, units
+    conversion and affine fall-back; every problem is an :class:`InputError` naming the file.
+    """
+    file = Path(source)
+    if not file.exists():
+        raise InputError(f"{source}: no such file; check the path")
+    if file.is_dir():
+        raise InputError(f"{source}: is a folder, not a NIfTI file; pass a .nii or .nii.gz file")
+    try:
+        img = nib.load(source)
+    except _READ_ERRORS as exc:
+        raise InputError(
+            f"{source}: not a readable NIfTI file ({_reason(exc)}); pass a .nii or .nii.gz image"
+        ) from exc
+    if not isinstance(img, nib.Nifti1Image):  # Nifti2Image is a subclass
+        raise InputError(
+            f"{source}: not a single-file NIfTI image (nibabel read it as "
+            f"{type(img).__name__}); convert it to .nii or .nii.gz"
+        )
+    shape = _squeeze_shape(tuple(int(n) for n in img.shape), source=source)
+    found: list[str] = []
+    input_units, factor = _spatial_units(img.header, source=source, found=found)
+    affine = _world_affine(img, factor, source=source, found=found)
+    return img, shape, input_units, affine, found
+
+
 def load_nifti(
     path: str | os.PathLike[str],
     *,
@@ -163,29 +193,7 @@ def load_nifti(
     (array([0.5, 0.5, 0.8]), 'RAS')
     """
     source = os.fspath(path)
-    file = Path(source)
-    if not file.exists():
-        raise InputError(f"{source}: no such file; check the path")
-    if file.is_dir():
-        raise InputError(f"{source}: is a folder, not a NIfTI file; pass a .nii or .nii.gz file")
-
-    try:
-        img = nib.load(source)
-    except _READ_ERRORS as exc:
-        raise InputError(
-            f"{source}: not a readable NIfTI file ({_reason(exc)}); pass a .nii or .nii.gz image"
-        ) from exc
-    if not isinstance(img, nib.Nifti1Image):  # Nifti2Image is a subclass
-        raise InputError(
-            f"{source}: not a single-file NIfTI image (nibabel read it as "
-            f"{type(img).__name__}); convert it to .nii or .nii.gz"
-        )
-    shape = _squeeze_shape(tuple(int(n) for n in img.shape), source=source)
-
-    found: list[str] = []
-    input_units, factor = _spatial_units(img.header, source=source, found=found)
-    affine = _world_affine(img, factor, source=source, found=found)
-
+    img, shape, input_units, affine, found = open_nifti(source)
     try:
         data = np.asanyarray(img.dataobj)
     except _READ_ERRORS as exc:
@@ -198,7 +206,7 @@ def load_nifti(
         label=label,
         threshold=threshold,
         source=source,
-        sha256=file_sha256(file, source=source),
+        sha256=file_sha256(source),
         input_units=input_units,
         dtype_in=np.dtype(img.get_data_dtype()).name,
         warnings=found,
