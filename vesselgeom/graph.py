@@ -63,6 +63,19 @@ class SkeletonGraph:
     nodes: dict[int, Node] = field(default_factory=dict)
     branches: list[Branch] = field(default_factory=list)
 
+    def branch_kind(self, branch: Branch) -> tuple[str, list[bool]]:
+        """The branch's kind and which of its ends are free (end nodes, not junctions).
+
+        Kinds: "loop" (closed, or both ends at one node), "isolated" (both ends free), "terminal" (one
+        free end), "internal" (junctions at both ends).
+        """
+        free = [n is not None and self.nodes[n].kind == "end" for n in (branch.start, branch.end)]
+        if branch.closed or (branch.start is not None and branch.start == branch.end):
+            return "loop", free
+        if all(free):
+            return "isolated", free
+        return ("terminal" if any(free) else "internal"), free
+
     def degree(self, node_id: int) -> int:
         """Number of branch ends at a node (a self-loop counts twice)."""
         return sum((b.start == node_id) + (b.end == node_id) for b in self.branches)

@@ -224,16 +224,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         next_node += len(node_ids)
         for b in graph.branches:
             world = b.path @ aff[:3, :3].T + aff[:3, 3]
-            ends = [graph.nodes[n].kind if n is not None else None for n in (b.start, b.end)]
-            free = [k == "end" for k in ends]
-            if b.closed or (b.start is not None and b.start == b.end):
-                kind = "loop"
-            elif all(free):
-                kind = "isolated"
-            elif any(free):
-                kind = "terminal"
-            else:
-                kind = "internal"
+            kind, free = graph.branch_kind(b)
             flags = ()
             if comp.touches_border and free_end_at_edge(
                 b.path, free, comp.offset, boundary.at_index, float(spacing.min()), volume.shape

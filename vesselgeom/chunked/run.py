@@ -398,18 +398,6 @@ def _junction_radii(
     return out
 
 
-def _kind(graph: Any, b: Any) -> tuple[str, list[bool]]:
-    ends = [graph.nodes[n].kind if n is not None else None for n in (b.start, b.end)]
-    free = [k == "end" for k in ends]
-    if b.closed or (b.start is not None and b.start == b.end):
-        return "loop", free
-    if all(free):
-        return "isolated", free
-    if any(free):
-        return "terminal", free
-    return "internal", free
-
-
 def _plan(
     comps: list, voxels: SkeletonVoxels, spacing_mm: np.ndarray
 ) -> list[tuple[Any, BranchContext, BranchJob]]:
@@ -431,7 +419,7 @@ def _plan(
         next_node += len(node_ids)
         comp.node_ids = node_ids
         for b in graph.branches:
-            kind, free = _kind(graph, b)
+            kind, free = graph.branch_kind(b)
             flags: tuple[str, ...] = ()
             if comp.at_edge and free_end_at_edge(
                 b.path, free, np.zeros(3), radius_at, float(spacing_mm.min()), voxels.shape
