@@ -302,19 +302,25 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             "foreground_voxels": int(volume.mask.sum()),
         },
         "settings": settings.to_dict(),
-        "derived": {
-            "step_mm": settings.step_mm or settings.step_voxels * voxel_mm,
-            "curvature_floor_per_mm": settings.curvature_floor_per_voxel / voxel_mm,
-            "min_component_voxels": float(min_voxels),
-            # accuracy shown in docs/validation.md holds from this radius up; smaller ones are flagged
-            "min_validated_radius_mm": settings.min_validated_radius_voxels * float(spacing.max()),
-        },
+        "derived": derived_values(settings, spacing, min_voxels),
         "counts": {"branches": len(branches), "junctions": len(junctions), "points": len(points)},
         "timings_seconds": {k: round(v, 3) for k, v in timings.items()},
         "warnings": notes,
         "environment": {"python": platform.python_version(), "numpy": np.__version__},
     }
     return Result(branches, points, junctions, run, volume)
+
+
+def derived_values(settings: Settings, spacing: np.ndarray, min_voxels: float) -> dict[str, float]:
+    """The settings turned into mm for this image (the ``derived`` block of run.json)."""
+    voxel_mm = float(np.mean(spacing))
+    return {
+        "step_mm": settings.step_mm or settings.step_voxels * voxel_mm,
+        "curvature_floor_per_mm": settings.curvature_floor_per_voxel / voxel_mm,
+        "min_component_voxels": float(min_voxels),
+        # accuracy shown in docs/validation.md holds from this radius up; smaller ones are flagged
+        "min_validated_radius_mm": settings.min_validated_radius_voxels * float(np.max(spacing)),
+    }
 
 
 def free_end_at_edge(path, free, offset, radius_at, voxel_mm, shape) -> bool:

@@ -44,7 +44,7 @@ from vesselgeom.errors import InputError
 from vesselgeom.graph import prune_spurs
 from vesselgeom.io.affine import orientation, voxel_sizes, voxel_volume
 from vesselgeom.measure import BranchContext, branch_row, junction_row, point_columns
-from vesselgeom.pipeline import CAUTION, Result, free_end_at_edge
+from vesselgeom.pipeline import CAUTION, Result, derived_values, free_end_at_edge
 from vesselgeom.settings import Settings
 from vesselgeom.tables import BRANCH_COLUMNS, JUNCTION_COLUMNS, POINT_COLUMNS, make_table
 
@@ -197,12 +197,7 @@ def analyze_chunked(
             "foreground_voxels": int(foreground),
         },
         "settings": settings.to_dict(),
-        "derived": {
-            "step_mm": settings.step_mm or settings.step_voxels * voxel_mm,
-            "curvature_floor_per_mm": settings.curvature_floor_per_voxel / voxel_mm,
-            "min_component_voxels": float(min_voxels),
-            "min_validated_radius_mm": settings.min_validated_radius_voxels * float(spacing_mm.max()),
-        },
+        "derived": derived_values(settings, spacing_mm, min_voxels),
         "chunking": {
             "chunk_size": chunk_size,
             "halo": halo,
