@@ -13,10 +13,9 @@ import numpy as np
 from scipy import ndimage
 from skimage.morphology import skeletonize
 
-__all__ = ["Component", "iter_components", "thin"]
+from .labelling import enclosed_background, label_foreground
 
-_FULL = np.ones((3, 3, 3), dtype=bool)
-_SIX = ndimage.generate_binary_structure(3, 1)
+__all__ = ["Component", "iter_components", "thin"]
 
 
 @dataclass(frozen=True)
@@ -42,37 +41,41 @@ class Component:
     touches_border: bool
 
 
-def _label(mask: np.ndarray, structure: np.ndarray) -> tuple[np.ndarray, int]:
-    """:func:`scipy.ndimage.label` into the smallest unsigned type that holds the labels (memory)."""
-    for dtype in (np.uint8, np.uint16, np.int32):
-        out = np.empty(mask.shape, dtype)
-        try:
-            n = ndimage.label(mask, structure=structure, output=out)
-        except RuntimeError:  # more labels than the type holds
-            continue
-        return out, int(n)
-    raise AssertionError("unreachable: int32 holds any label count of an array")
-
-
-def _cavities(mask: np.ndarray) -> np.ndarray:
-    """Index coordinates (k, 3) of the background voxels not 6-connected to the array's outside.
-
-    Every hole of a single component (what :func:`scipy.ndimage.binary_fill_holes` fills in its crop)
-    is either such a voxel or a voxel of another component, and a component enclosed in a hole leaves
-    background around it that is such a voxel too; so a component whose box holds none of these has
-    no hole. One labelling of the background replaces a fill per component.
-    """
-    bg, n = _label(np.pad(~mask, 1, constant_values=True), _SIX)
-    if n <= 1:  # the outside only
-        return np.zeros((0, 3), np.intp)
-    return np.argwhere((bg != 0) & (bg != bg[0, 0, 0])) - 1
-
-
 def _fill_holes(crop: np.ndarray) -> np.ndarray:
-    """:func:`scipy.ndimage.binary_fill_holes` (6-connected background) by one labelling of the background."""
-    bg, _ = _label(np.pad(~crop, 1, constant_values=True), _SIX)
-    outside = bg[0, 0, 0]
-    return ~(bg[1:-1, 1:-1, 1:-1] == outside)
+    """:func:`scipy.ndimage.binary_fill_holes` (6-connected background) of a small crop."""
+    return ndimage.binary_fill_holes(crop)
+
+
+def _hole_owners(cavity_ijk: np.ndarray, region: np.ndarray, flat: np.ndarray, labels: np.ndarray, shape):
+    """Which component encloses each enclosed background region: (owner per region, multi-owner labels).
+
+    Every 6-neighbour of a 6-connected background region that is not in the region is foreground, so a
+    region all of whose neighbours belong to one component is a hole of that component alone (its
+    boundary is that component's voxels). A region that touches several components (one inside a hole
+    of another) is left to a fill of each touching component's crop. Owner -1 marks those regions.
+    """
+    if not len(cavity_ijk):
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    n_reg = int(region.max()) + 1
+    owner = np.full(n_reg, -1, np.int64)
+    idx = np.ravel_multi_index(tuple(cavity_ijk.T), shape)
+    strides = (shape[1] * shape[2], shape[2], 1)
+    reg, lab = [], []
+    for axis, stride in enumerate(strides):
+        for sign in (1, -1):
+            nb = cavity_ijk[:, axis] + sign
+            ok = (nb >= 0) & (nb < shape[axis])
+            q = idx[ok] + sign * stride
+            pos = np.minimum(np.searchsorted(flat, q), len(flat) - 1)
+            hit = flat[pos] == q
+            reg.append(region[ok][hit])
+            lab.append(labels[pos[hit]].astype(np.int64))
+    reg_all, lab_all = np.concatenate(reg), np.concatenate(lab)
+    pairs = np.unique(np.stack([reg_all, lab_all], axis=1), axis=0)
+    count = np.bincount(pairs[:, 0], minlength=n_reg)
+    single = count[pairs[:, 0]] == 1
+    owner[pairs[single, 0]] = pairs[single, 1]
+    return owner, np.unique(pairs[~single, 1])
 
 
 def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = True) -> Iterator[Component]:
@@ -88,32 +91,41 @@ def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = T
 
     Notes
     -----
-    Memory: the labels are computed on the foreground's bounding box in the smallest integer type that
-    holds them, then reduced to the foreground voxels' flat indices grouped by component (8 bytes per
-    foreground voxel), so nothing of the volume's size is kept while the components are processed.
+    Memory: labels are computed in slabs (:mod:`vesselgeom.labelling`) and kept only for the foreground
+    voxels (12 bytes each) and the enclosed background voxels, so nothing of the volume's size is
+    allocated. Holes: the enclosed background regions of the whole mask are found once; a region
+    enclosed by one component alone is that component's hole and is filled directly; only components
+    that share a region with another (one nested in the other's hole) are filled crop by crop.
     """
     mask = np.asarray(mask, bool)
     shape = np.array(mask.shape)
-    nz = [np.flatnonzero(mask.any(axis=tuple(j for j in range(3) if j != i))) for i in range(3)]
-    if any(a.size == 0 for a in nz):
+    flat, labels, _ = label_foreground(mask)
+    if not len(flat):
         return
-    lo_box = np.array([a[0] for a in nz])
-    hi_box = np.array([a[-1] + 1 for a in nz])
-    box = tuple(slice(a, b) for a, b in zip(lo_box, hi_box, strict=True))
-    sub = mask[box]
-    cavities = _cavities(sub) + lo_box if fill_holes else np.zeros((0, 3), np.intp)
-    labels, n = _label(sub, _FULL)
-    flat = np.flatnonzero(labels)
-    lab = labels.ravel()[flat]
-    del labels
-    order = np.argsort(lab, kind="stable")  # by label, raster order within each
-    flat, lab = flat[order], lab[order]
-    ijk = np.stack(np.unravel_index(flat, sub.shape), axis=1) + lo_box
+    if fill_holes:
+        cavity_ijk, region = enclosed_background(mask)
+        owner, nested = _hole_owners(cavity_ijk, region, flat, labels, mask.shape)
+        cavity_owner = owner[region] if len(region) else np.zeros(0, np.int64)
+    else:
+        cavity_ijk, cavity_owner, nested = np.zeros((0, 3), np.int64), np.zeros(0, np.int64), np.zeros(0)
+    order = np.argsort(labels, kind="stable")  # by label, raster order within each
+    flat, labels = flat[order], labels[order]
+    del order
+    ijk = np.stack(np.unravel_index(flat, mask.shape), axis=1)
     del flat
-    starts = np.r_[0, np.flatnonzero(np.diff(lab)) + 1]
-    sizes = np.diff(np.r_[starts, len(lab)])
+    starts = np.r_[0, np.flatnonzero(np.diff(labels)) + 1]
+    sizes = np.diff(np.r_[starts, len(labels)])
+    comp_labels = labels[starts]
+    del labels
+    holes_of = {}
+    if len(cavity_owner):
+        by = np.argsort(cavity_owner, kind="stable")
+        own = cavity_owner[by]
+        cuts = np.r_[0, np.flatnonzero(np.diff(own)) + 1, len(own)]
+        holes_of = {int(own[a]): cavity_ijk[by[a:b]] for a, b in zip(cuts[:-1], cuts[1:], strict=True)}
+    nested_set = set(np.asarray(nested).tolist())
     kept = 0
-    for start, size in zip(starts.tolist(), sizes.tolist(), strict=True):
+    for start, size, lab in zip(starts.tolist(), sizes.tolist(), comp_labels.tolist(), strict=True):
         if size < min_voxels:
             continue
         kept += 1
@@ -124,7 +136,10 @@ def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = T
         crop = np.zeros(tuple(hi - lo + 2), bool)
         local = vox - lo + 1
         crop[local[:, 0], local[:, 1], local[:, 2]] = True
-        if cavities.size and np.any(np.all((cavities >= lo) & (cavities < hi), axis=1)):
+        if lab in holes_of:
+            h = holes_of[lab] - lo + 1
+            crop[h[:, 0], h[:, 1], h[:, 2]] = True
+        if lab in nested_set:
             crop[1:-1, 1:-1, 1:-1] = _fill_holes(crop[1:-1, 1:-1, 1:-1])
         yield Component(kept, lo - 1, crop, touches)
 
