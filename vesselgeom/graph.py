@@ -218,9 +218,12 @@ def build_graph_from_coords(coords: np.ndarray, shape: tuple[int, ...]) -> Skele
 
     # nodes: junction clusters and chain ends with skeleton degree 1, numbered by their first voxel
     node_first: list[tuple[int, str, np.ndarray]] = []
-    for j in np.unique(jlab[is_junc]):
-        members = np.flatnonzero(jlab == j)
-        node_first.append((int(members.min()), "junction", members))
+    jv = np.flatnonzero(is_junc)  # junction voxels grouped by cluster, ascending within each
+    jv = jv[np.argsort(jlab[jv], kind="stable")]
+    cuts = np.flatnonzero(np.r_[True, jlab[jv][1:] != jlab[jv][:-1], True])
+    for lo, hi in zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True):
+        members = jv[lo:hi]
+        node_first.append((int(members[0]), "junction", members))
     for v in np.flatnonzero(deg == 1):
         node_first.append((int(v), "end", np.array([v])))
     node_first.sort(key=lambda x: x[0])
