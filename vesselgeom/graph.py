@@ -220,7 +220,7 @@ def build_graph_from_coords(coords: np.ndarray, shape: tuple[int, ...]) -> Skele
     node_first: list[tuple[int, str, np.ndarray]] = []
     jv = np.flatnonzero(is_junc)  # junction voxels grouped by cluster, ascending within each
     jv = jv[np.argsort(jlab[jv], kind="stable")]
-    cuts = np.flatnonzero(np.r_[True, jlab[jv][1:] != jlab[jv][:-1], True])
+    cuts = np.flatnonzero(np.r_[True, jlab[jv][1:] != jlab[jv][:-1], True]) if jv.size else np.zeros(1, int)
     for lo, hi in zip(cuts[:-1].tolist(), cuts[1:].tolist(), strict=True):
         members = jv[lo:hi]
         node_first.append((int(members[0]), "junction", members))
