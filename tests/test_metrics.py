@@ -16,8 +16,18 @@ import numpy as np
 import pytest
 import sympy as sp
 from scipy.integrate import cumulative_trapezoid
+from scipy.signal import find_peaks
 
-from vesselgeom.metrics import count_inflections, distance_metric, integrate, sum_of_angles
+from vesselgeom.errors import InputError
+from vesselgeom.metrics import (
+    count_inflections,
+    count_inflections_many,
+    distance_metric,
+    integrate,
+    integrate_many,
+    sum_of_angles,
+    sum_of_angles_many,
+)
 
 # --------------------------------------------------------------------------- distance metric
 
@@ -225,3 +235,179 @@ def test_integrate_fewer_than_two_samples():
     # An integral over a single point or no points is zero.
     assert integrate(np.array([3.0]), np.array([1.0])) == 0.0
     assert integrate(np.array([]), np.array([])) == 0.0
+
+
+# --------------------------------------------------------------------------- many curves at once
+# Reference for each *_many function: its one-curve form applied curve by curve (checked above against
+# closed forms), and scipy.signal.find_peaks for the peak search. The *_many forms repeat the same
+# element-wise arithmetic and numpy's pairwise summation, so sums agree to rounding: 1e-12 relative
+# allows for a different summation order only.
+
+
+def _offsets(sizes) -> np.ndarray:
+    return np.r_[0, np.cumsum(sizes)].astype(np.intp)
+
+
+def test_integrate_many_trapezoid_exact_error():
+    # Trapezoid rule on f = x^2 over [0, 1] with n intervals: 1/3 + h^2/6 (Burden & Faires, sec. 4.3),
+    # for several n in one call; one or no sample integrates to 0.
+    ns = [10, 3, 200, 1]
+    xs = [np.linspace(0.0, 1.0, n + 1) for n in ns] + [np.array([0.5]), np.array([])]
+    x = np.concatenate(xs)
+    out = integrate_many(x**2, x, _offsets([len(v) for v in xs]))
+    expected = [1 / 3 + (1 / n) ** 2 / 6 for n in ns] + [0.0, 0.0]
+    assert out == pytest.approx(expected, rel=1e-13)
+
+
+def test_integrate_many_matches_integrate():
+    rng = np.random.default_rng(3)
+    sizes = [0, 1, 2, 3, 7, 8, 9, 129, 300, 5000, 0, 2]
+    arcs = [np.cumsum(rng.uniform(0.1, 1.0, n)) for n in sizes]
+    vals = [rng.uniform(0.0, 2.0, n) for n in sizes]
+    out = integrate_many(np.concatenate(vals), np.concatenate(arcs), _offsets(sizes))
+    ref = [integrate(v, a) for v, a in zip(vals, arcs, strict=True)]
+    assert out == pytest.approx(ref, rel=1e-12, abs=0.0)
+
+
+def test_integrate_many_bad_offsets():
+    with pytest.raises(InputError, match="offsets"):
+        integrate_many(np.ones(4), np.arange(4.0), np.array([0, 3]))
+
+
+def test_sum_of_angles_many_closed_forms():
+    # Helix SOAM -> 1/sqrt(a^2+b^2) (fine limit, low by about 2/(n-1)) and the closed circle's exact
+    # discrete value (1/R)(pi/n)/sin(pi/n) (Bullitt 2003; METHODS.md), in one call.
+    n = 10001
+    helix_pts = _helix_points(10.0, 3.0, 2, n)
+    m, R = 1000, 7.0
+    th = 2 * np.pi * np.arange(m) / m
+    circle = np.stack([R * np.cos(th), R * np.sin(th), np.zeros(m)], axis=1)
+    out = sum_of_angles_many(
+        np.concatenate([helix_pts, circle]), _offsets([n, m]), closed=np.array([False, True])
+    )
+    assert out[0] == pytest.approx(1 / np.hypot(10.0, 3.0), rel=5e-4)
+    assert out[1] == pytest.approx((np.pi / m) / np.sin(np.pi / m) / R, rel=1e-6)
+
+
+def test_sum_of_angles_many_matches_sum_of_angles():
+    rng = np.random.default_rng(4)
+    sizes = [1, 2, 3, 4, 5, 8, 50, 400, 0, 3, 6, 1000]
+    closed = np.array([i % 2 == 1 for i in range(len(sizes))])
+    curves = [np.cumsum(rng.normal(size=(n, 3)), axis=0) for n in sizes]
+    curves[6][10:20] = curves[6][10] + np.arange(10)[:, None] * np.array([1.0, 0.5, 0.2])  # straight run
+    straight = [rng.uniform(size=n) < 0.2 for n in sizes]
+    pts = np.concatenate(curves)
+    for st in (None, np.concatenate(straight)):
+        out = sum_of_angles_many(pts, _offsets(sizes), closed=closed, straight=st)
+        for i, (p, c) in enumerate(zip(curves, closed, strict=True)):
+            ref = sum_of_angles(p, closed=bool(c), straight=None if st is None else straight[i])
+            assert (np.isnan(ref) and np.isnan(out[i])) or out[i] == pytest.approx(ref, rel=1e-12, abs=0)
+    # fewer than four points, counting a closed curve's three repeated ones: NaN
+    assert np.isnan(out[[0, 2]]).all() and np.isfinite(out[[1, 3]]).all()
+
+
+def test_find_peaks_many_matches_scipy():
+    # scipy.signal.find_peaks(height=floor, prominence=floor) is the reference implementation; signals
+    # quantised to a coarse grid have plateaus, equal peaks and plateaus at the ends.
+    from vesselgeom.metrics import _find_peaks_many
+
+    rng = np.random.default_rng(5)
+    for trial in range(200):
+        sizes = rng.integers(0, 60, size=rng.integers(1, 12))
+        sigs = [np.round(np.cumsum(rng.normal(size=n)) * (1 + trial % 3)) / 4 for n in sizes]
+        x = np.concatenate(sigs) if len(sigs) else np.zeros(0)
+        floor = float(rng.choice([0.0, 0.25, 0.5, 1.0]))
+        ref = np.concatenate(
+            [
+                find_peaks(s, height=floor, prominence=floor)[0] + o
+                for s, o in zip(sigs, _offsets(sizes)[:-1], strict=True)
+            ]
+        )
+        np.testing.assert_array_equal(_find_peaks_many(x, _offsets(sizes), floor), ref)
+
+
+def _random_curvature(rng, n: int, closed: bool):
+    """Curvature |s| and binormals sign(s) u of a wavy signal s: N reverses between lobes of s."""
+    t = np.arange(n) * rng.uniform(0.05, 0.4)
+    s = np.sin(t) + rng.uniform(0.0, 0.6) * np.sin(rng.uniform(1.5, 4.0) * t + rng.uniform(0, 6))
+    s = s + rng.normal(scale=rng.choice([0.0, 0.05]), size=n)
+    if closed:  # periodic: wrap smoothly onto itself
+        s = np.sin(2 * np.pi * rng.integers(1, 5) * np.arange(n) / n) + 0.05 * rng.normal(size=n)
+    k = np.round(np.abs(s), int(rng.choice([2, 6])))  # rounding makes plateaus
+    u = rng.normal(size=3)
+    u /= np.linalg.norm(u)
+    b = np.sign(s)[:, None] * u
+    b[rng.uniform(size=n) < 0.05] = np.cross(u, [0.0, 0.0, 1.0])  # a few at right angles: dot 0
+    b[k <= 0.1] = np.nan  # undefined below the floor
+    k[rng.uniform(size=n) < 0.02] = np.nan  # nan_to_num turns these into 0
+    # steps on a binary grid half the time, so minima fall exactly on the end-exclusion limits
+    steps = rng.choice([0.125, 0.25], n) if rng.uniform() < 0.5 else rng.uniform(0.05, 0.3, n)
+    arc = np.cumsum(steps)
+    measured = np.zeros(n, bool)
+    if rng.uniform() < 0.8:  # else nothing measured: the whole curve counts
+        measured[rng.integers(0, n // 3 + 1) : n - rng.integers(0, n // 3 + 1)] = True
+    return arc, k, b, measured
+
+
+def test_count_inflections_many_matches_count_inflections():
+    # Reference: count_inflections curve by curve (peak search by scipy.signal.find_peaks).
+    rng = np.random.default_rng(6)
+    total = total_closed = 0
+    for _trial in range(30):
+        sizes = rng.integers(0, 400, size=rng.integers(1, 15))
+        closed = rng.uniform(size=len(sizes)) < 0.3
+        curves = [_random_curvature(rng, int(n), bool(c)) for n, c in zip(sizes, closed, strict=True)]
+        excl = rng.integers(0, 40, size=len(sizes)) * 0.125
+        arc, k, b, meas = (np.concatenate([c[i] for c in curves]) for i in range(4))
+        b = b.reshape(-1, 3)
+        for measured in (meas, None):
+            out = count_inflections_many(
+                arc,
+                k,
+                b,
+                _offsets(sizes),
+                floor=0.1,
+                dip=0.5,
+                end_exclusion_mm=excl,
+                closed=closed,
+                measured=measured,
+            )
+            ref = [
+                count_inflections(
+                    a_,
+                    k_,
+                    b_,
+                    floor=0.1,
+                    dip=0.5,
+                    end_exclusion_mm=e,
+                    closed=bool(c),
+                    measured=None if measured is None else m_,
+                )
+                for (a_, k_, b_, m_), e, c in zip(curves, excl, closed, strict=True)
+            ]
+            np.testing.assert_array_equal(out, ref)
+            total += sum(ref)
+            total_closed += sum(r for r, c in zip(ref, closed, strict=True) if c)
+    assert total > 100 and total_closed > 10  # the comparison covered many inflections
+
+
+@pytest.mark.parametrize("periods", [1, 2, 3, 5])
+def test_count_inflections_many_sinusoids(periods):
+    # METHODS.md: N wavelengths of y = A sin(2 pi x / lambda) have 2N - 1 interior inflections; a circle
+    # has none (closed or open). All in one call.
+    parts = []
+    for A, lam in ((4.0, 40.0), (2.0, 15.0)):
+        r = sp.Matrix([_t, A * sp.sin(2 * sp.pi * _t / lam), 0])
+        parts.append(_planar_frame(r, np.linspace(0.0, periods * lam, 400 * periods + 1)))
+    circle = sp.Matrix([6 * sp.cos(_t), 6 * sp.sin(_t), 0])
+    parts.append(_planar_frame(circle, 2 * np.pi * np.arange(2000) / 2000))
+    arc, kappa, binormal = (np.concatenate([p[i] for p in parts]) for i in range(3))
+    out = count_inflections_many(
+        arc,
+        kappa,
+        binormal,
+        _offsets([len(p[0]) for p in parts]),
+        floor=0.1 * 2.0 * (2 * np.pi / 15.0) ** 2,
+        closed=np.array([False, False, True]),
+    )
+    np.testing.assert_array_equal(out, [2 * periods - 1, 2 * periods - 1, 0])
