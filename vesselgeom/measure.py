@@ -38,6 +38,7 @@ __all__ = [
     "branch_rows",
     "point_columns",
     "point_columns_many",
+    "end_directions",
     "junction_row",
 ]
 
@@ -509,27 +510,30 @@ def _outgoing(cl: Centerline, at_start: bool, reach_mm: float) -> np.ndarray:
     return cl.frame.tangent[i] * (1.0 if at_start else -1.0)
 
 
+def end_directions(cl: Centerline, *, settings: Settings) -> tuple[np.ndarray, np.ndarray]:
+    """The branch's directions away from its start and its end, as :func:`junction_row` uses them.
+
+    Each is the unit tangent ``junction_angle_radii`` smoothing scales (about a radius) from that end,
+    pointing away from it (METHODS: tangents 1-3 radii from the junction), so junction angles do not
+    depend on where thinning put the junction voxels.
+    """
+    reach = settings.junction_angle_radii * cl.scale_mm
+    return _outgoing(cl, True, reach), _outgoing(cl, False, reach)
+
+
 def junction_row(
     node_id: int,
     component_id: int,
     position: np.ndarray,
     radius_mm: float,
-    ends: list[tuple[int, Centerline | None, bool]],
-    *,
-    settings: Settings,
+    ends: list[tuple[int, np.ndarray | None]],
 ) -> dict:
     """One row of junctions.csv.
 
-    ``ends`` lists (branch_id, centreline, at_start) for every branch end at the node. Each branch's
-    direction is its tangent ``junction_angle_radii`` smoothing scales (about a radius) from the junction,
-    pointing away from it (METHODS: tangents 1-3 radii from the junction), so the angles do not depend
-    on where thinning put the junction voxels.
+    ``ends`` lists (branch_id, direction) for every branch end at the node: the branch's unit direction
+    away from the node (:func:`end_directions`), or None where its tracing failed.
     """
-    dirs = []
-    for bid, cl, at_start in ends:
-        if cl is not None:
-            reach = settings.junction_angle_radii * cl.scale_mm
-            dirs.append((bid, _outgoing(cl, at_start, reach)))
+    dirs = [(bid, d) for bid, d in ends if d is not None]
     parts, angles = [], []
     for i in range(len(dirs)):
         for j in range(i + 1, len(dirs)):
@@ -545,7 +549,7 @@ def junction_row(
         "y_mm": float(position[1]),
         "z_mm": float(position[2]),
         "degree": len(ends),
-        "branch_ids": ";".join(str(b) for b in sorted(b for b, _, _ in ends)),
+        "branch_ids": ";".join(str(b) for b in sorted(b for b, _ in ends)),
         "radius_mm": radius_mm,
         "min_angle_deg": min(angles) if angles else float("nan"),
         "max_angle_deg": max(angles) if angles else float("nan"),

@@ -27,7 +27,7 @@ from .exports import branch_label_volume, write_label_volume, write_vtp
 from .graph import build_graph, prune_spurs
 from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
 from .io.affine import voxel_sizes
-from .measure import BranchContext, branch_row, junction_row, point_columns
+from .measure import BranchContext
 from .qc import profile_figures, qc_figure
 from .radius import BoundaryDistance
 from .settings import Settings
@@ -37,11 +37,14 @@ from .tables import (
     JUNCTION_COLUMNS,
     POINT_COLUMNS,
     columns_document,
-    make_table,
     write_csv,
 )
+from .tabulate import TableBuilder
 
 __all__ = ["Result", "analyze", "analyze_volume", "CAUTION"]
+
+# branches traced and measured together (bounds the memory of traced centrelines)
+_BATCH_BRANCHES = 2048
 
 
 @dataclass
@@ -189,9 +192,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         if settings.min_component_mm3 is not None
         else settings.min_component_voxels
     )
-    branch_rows: list[dict] = []
-    point_parts: list[dict[str, np.ndarray]] = []
-    junction_rows: list[dict] = []
+    builder = TableBuilder(settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing.max()))
     next_branch, next_node = 1, 1
 
     t = time.perf_counter()
@@ -242,50 +243,45 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
                 )
             )
             next_branch += 1
-        lines = trace_centerlines(
-            inputs, section=section, boundary=boundary, voxel_mm=voxel_mm, settings=settings
-        )
+        del skel
         timings["trace"] += time.perf_counter() - t
+        # traced and measured in batches: only each branch's end directions outlive its batch
+        for lo in range(0, len(inputs), _BATCH_BRANCHES):
+            t = time.perf_counter()
+            lines = trace_centerlines(
+                inputs[lo : lo + _BATCH_BRANCHES],
+                section=section,
+                boundary=boundary,
+                voxel_mm=voxel_mm,
+                settings=settings,
+            )
+            timings["trace"] += time.perf_counter() - t
+            t = time.perf_counter()
+            builder.add_branches(lines, contexts[lo : lo + _BATCH_BRANCHES])
+            del lines
+            timings["measure"] += time.perf_counter() - t
 
         t = time.perf_counter()
-        for cl, ctx in zip(lines, contexts, strict=True):
-            branch_rows.append(
-                branch_row(
-                    cl, ctx, settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing.max())
-                )
-            )
-            if cl is not None:
-                point_parts.append(point_columns(cl, ctx.branch_id))
-        ends_at: dict[int, list] = {}  # branch ends per node, in branch order
-        for cl, ctx, b in zip(lines, contexts, graph.branches, strict=True):
+        ends_at: dict[int, list[tuple[int, bool]]] = {}  # branch ends per node, in branch order
+        for ctx, b in zip(contexts, graph.branches, strict=True):
             if b.start is not None:
-                ends_at.setdefault(b.start, []).append((ctx.branch_id, cl, True))
+                ends_at.setdefault(b.start, []).append((ctx.branch_id, True))
             if b.end is not None:
-                ends_at.setdefault(b.end, []).append((ctx.branch_id, cl, False))
-        for nid in sorted(graph.nodes):
-            node = graph.nodes[nid]
-            if node.kind != "junction":
-                continue
-            pos = node.position @ aff[:3, :3].T + aff[:3, 3]
-            ends = ends_at.get(nid, [])
-            junction_rows.append(
-                junction_row(
-                    node_ids[nid],
-                    comp.component_id,
-                    pos,
-                    float(boundary(pos[None])[0]),
-                    ends,
-                    settings=settings,
-                )
-            )
+                ends_at.setdefault(b.end, []).append((ctx.branch_id, False))
+        junctions = [nid for nid in sorted(graph.nodes) if graph.nodes[nid].kind == "junction"]
+        if junctions:
+            pos = np.array([graph.nodes[nid].position for nid in junctions]) @ aff[:3, :3].T + aff[:3, 3]
+            radii = boundary(pos)
+            for nid, p, r in zip(junctions, pos, radii, strict=True):
+                builder.add_junction(node_ids[nid], comp.component_id, p, float(r), ends_at.get(nid, []))
         timings["measure"] += time.perf_counter() - t
         t = time.perf_counter()
 
     for msg in notes[len(volume.warnings) :]:
         warnings.warn(f"{volume.source}: {msg}", VesselgeomWarning, stacklevel=2)
-    branches = make_table(BRANCH_COLUMNS, _columns(branch_rows, BRANCH_COLUMNS))
-    points = make_table(POINT_COLUMNS, _concat(point_parts, POINT_COLUMNS))
-    junctions = make_table(JUNCTION_COLUMNS, _columns(junction_rows, JUNCTION_COLUMNS))
+    t = time.perf_counter()
+    branches, points, junctions = builder.tables()
+    timings["measure"] += time.perf_counter() - t
     run = {
         "software": "vesselgeom",
         "version": __version__,
@@ -337,15 +333,3 @@ def free_end_at_edge(path, free, offset, radius_at, voxel_mm, shape) -> bool:
         if to_face <= float(radius_at(point[None])[0]) / voxel_mm + 1.0:
             return True
     return False
-
-
-def _columns(rows: list[dict], schema) -> dict[str, list] | None:
-    if not rows:
-        return None
-    return {c.name: [r[c.name] for r in rows] for c in schema}
-
-
-def _concat(parts: list[dict[str, np.ndarray]], schema) -> dict[str, np.ndarray] | None:
-    if not parts:
-        return None
-    return {c.name: np.concatenate([p[c.name] for p in parts]) for c in schema}

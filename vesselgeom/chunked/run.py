@@ -43,10 +43,10 @@ from vesselgeom.chunked.tracing import BranchJob, trace_jobs
 from vesselgeom.errors import InputError
 from vesselgeom.graph import prune_spurs
 from vesselgeom.io.affine import orientation, voxel_sizes, voxel_volume
-from vesselgeom.measure import BranchContext, branch_row, junction_row, point_columns
+from vesselgeom.measure import BranchContext
 from vesselgeom.pipeline import CAUTION, Result, derived_values, free_end_at_edge
 from vesselgeom.settings import Settings
-from vesselgeom.tables import BRANCH_COLUMNS, JUNCTION_COLUMNS, POINT_COLUMNS, make_table
+from vesselgeom.tabulate import TableBuilder
 
 __all__ = ["analyze_chunked", "PROCESS_OVERHEAD_MB", "BRANCHES_PER_TASK"]
 
@@ -439,54 +439,25 @@ def _measure(
     settings: Settings,
 ) -> tuple:
     """The three tables, row by row as :func:`vesselgeom.pipeline.analyze_volume` builds them."""
-    voxel_mm = float(np.mean(spacing_mm))
-    branch_rows, point_parts, junction_rows = [], [], []
+    builder = TableBuilder(
+        settings=settings, voxel_mm=float(np.mean(spacing_mm)), coarsest_voxel_mm=float(spacing_mm.max())
+    )
     by_branch = {id(b): (ctx, cl) for (b, ctx, _), cl in zip(plan, lines, strict=True)}
     for comp in comps:
         graph = comp.graph
         entries = [(b, *by_branch[id(b)]) for b in graph.branches]
-        for _, ctx, cl in entries:
-            branch_rows.append(
-                branch_row(
-                    cl, ctx, settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing_mm.max())
-                )
-            )
-            if cl is not None:
-                point_parts.append(point_columns(cl, ctx.branch_id))
+        builder.add_branches([cl for _, _, cl in entries], [ctx for _, ctx, _ in entries])
+        ends_at: dict[int, list[tuple[int, bool]]] = {}  # branch ends per node, in branch order
+        for b, ctx, _ in entries:
+            if b.start is not None:
+                ends_at.setdefault(b.start, []).append((ctx.branch_id, True))
+            if b.end is not None:
+                ends_at.setdefault(b.end, []).append((ctx.branch_id, False))
         for nid in sorted(graph.nodes):
             node = graph.nodes[nid]
             if node.kind != "junction":
                 continue
             pos = node.position @ affine[:3, :3].T + affine[:3, 3]
-            ends = []
-            for b, ctx, cl in entries:
-                if b.start == nid:
-                    ends.append((ctx.branch_id, cl, True))
-                if b.end == nid:
-                    ends.append((ctx.branch_id, cl, False))
-            junction_rows.append(
-                junction_row(
-                    comp.node_ids[nid],
-                    comp.component_id,
-                    pos,
-                    radii[tuple(node.position.tolist())],
-                    ends,
-                    settings=settings,
-                )
-            )
-    branches = make_table(BRANCH_COLUMNS, _columns(branch_rows, BRANCH_COLUMNS))
-    points = make_table(POINT_COLUMNS, _concat(point_parts, POINT_COLUMNS))
-    junctions = make_table(JUNCTION_COLUMNS, _columns(junction_rows, JUNCTION_COLUMNS))
-    return branches, points, junctions
-
-
-def _columns(rows: list[dict], schema: Any) -> dict[str, list] | None:
-    if not rows:
-        return None
-    return {c.name: [r[c.name] for r in rows] for c in schema}
-
-
-def _concat(parts: list[dict[str, np.ndarray]], schema: Any) -> dict[str, np.ndarray] | None:
-    if not parts:
-        return None
-    return {c.name: np.concatenate([p[c.name] for p in parts]) for c in schema}
+            radius = radii[tuple(node.position.tolist())]
+            builder.add_junction(comp.node_ids[nid], comp.component_id, pos, radius, ends_at.get(nid, []))
+    return builder.tables()
