@@ -9,7 +9,8 @@ radii 1-5 voxels); thinning alone (scikit-image) and the whole pipeline are time
 same process, with the pipeline's per-stage times (``run.json`` timings) and the ratio.
 
 *Ladder* (``--ladder``): the geometry stages alone (trace: ``vesselgeom.centerline.trace_centerlines``;
-measure: ``vesselgeom.measure.branch_row`` and ``point_columns``) on N branches. The branches are those
+measure: ``vesselgeom.tabulate.TableBuilder.add_branches``, i.e. ``branch_columns`` and
+``point_columns_many``) on N branches. The branches are those
 of a fixed-seed 256^3 network, prepared as the pipeline prepares them (components, thinning, graph,
 pruning), and cycled component by component until N branches have been traced, as if the network were
 tiled N / 396 times. Reports time per branch; linear cost means a constant time per branch.
@@ -121,9 +122,10 @@ def _prepared_components():
 
 def _ladder(n: int) -> dict:
     from vesselgeom.centerline import trace_centerlines
-    from vesselgeom.measure import branch_row, point_columns
+    from vesselgeom.tabulate import TableBuilder
 
     comps, voxel_mm, settings = _prepared_components()
+    builder = TableBuilder(settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=voxel_mm)
     source_branches = sum(len(c[2]) for c in comps)
     base_rss = _peak_mb()
     trace = measure = 0.0
@@ -138,10 +140,8 @@ def _ladder(n: int) -> dict:
                 inputs[:take], section=section, boundary=boundary, voxel_mm=voxel_mm, settings=settings
             )
             t1 = time.perf_counter()
-            for cl, ctx in zip(lines, contexts[:take], strict=True):
-                branch_row(cl, ctx, settings=settings, voxel_mm=voxel_mm)
-                if cl is not None:
-                    points += len(point_columns(cl, ctx.branch_id)["arc_mm"])
+            builder.add_branches(lines, contexts[:take])
+            points += sum(len(cl.arc) for cl in lines if cl is not None)
             t2 = time.perf_counter()
             trace += t1 - t
             measure += t2 - t1

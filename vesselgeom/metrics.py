@@ -17,7 +17,6 @@ vascular tortuosity", Int J Med Inform 53:239-252, 1999 (curvature integrals).
 from __future__ import annotations
 
 import numpy as np
-from scipy.signal import find_peaks
 
 from .errors import InputError
 
@@ -155,6 +154,8 @@ def count_inflections(
     -------
     int
     """
+    from scipy.signal import find_peaks  # the reference; imported here only (~20 MB)
+
     k = np.nan_to_num(np.asarray(curvature, float))
     if len(k) < 3:
         return 0

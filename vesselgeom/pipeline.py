@@ -211,8 +211,9 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             continue
 
         t = time.perf_counter()
-        boundary = BoundaryDistance(comp.mask, aff)
         graph = build_graph(skel)
+        del skel
+        boundary = BoundaryDistance(comp.mask, aff)
         graph = prune_spurs(
             graph, linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
         )
@@ -243,7 +244,6 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
                 )
             )
             next_branch += 1
-        del skel
         timings["trace"] += time.perf_counter() - t
         # traced and measured in batches: only each branch's end directions outlive its batch
         for lo in range(0, len(inputs), _BATCH_BRANCHES):

@@ -13,8 +13,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
 
 from .caution import CAUTION
 from .io.affine import voxel_sizes
@@ -23,6 +21,16 @@ __all__ = ["qc_figure", "profile_figures"]
 
 _CAPTION = CAUTION
 _AXES = ("i", "j", "k")
+
+
+def _figure(**kwargs):
+    """A matplotlib Figure on the Agg canvas (matplotlib is imported here, only when drawing: ~30 MB)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(**kwargs)
+    FigureCanvasAgg(fig)
+    return fig
 
 
 def _nice_length(span: float) -> float:
@@ -69,8 +77,7 @@ def qc_figure(
         to_index(junctions[["x_mm", "y_mm", "z_mm"]].to_numpy(float)) if len(junctions) else np.zeros((0, 3))
     )
 
-    fig = Figure(figsize=(13, 5.0), dpi=110, layout="constrained")
-    FigureCanvasAgg(fig)
+    fig = _figure(figsize=(13, 5.0), dpi=110, layout="constrained")
     axes = fig.subplots(1, 3)
     scatter = None
     for ax, along in zip(axes, range(3), strict=True):
@@ -130,8 +137,7 @@ def profile_figures(points: pd.DataFrame, out_dir: str | os.PathLike[str]) -> li
     out.mkdir(parents=True, exist_ok=True)
     written = []
     for bid, g in points.groupby("branch_id", sort=True):
-        fig = Figure(figsize=(6, 5.5), dpi=100)
-        FigureCanvasAgg(fig)
+        fig = _figure(figsize=(6, 5.5), dpi=100)
         axes = fig.subplots(3, 1, sharex=True)
         s = g["arc_mm"].to_numpy(float)
         summary = g["in_summary"].to_numpy(bool)

@@ -92,10 +92,11 @@ def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = T
     Notes
     -----
     Memory: labels are computed in slabs (:mod:`vesselgeom.labelling`) and kept only for the foreground
-    voxels (12 bytes each) and the enclosed background voxels, so nothing of the volume's size is
-    allocated. Holes: the enclosed background regions of the whole mask are found once; a region
-    enclosed by one component alone is that component's hole and is filled directly; only components
-    that share a region with another (one nested in the other's hole) are filled crop by crop.
+    voxels (flat indices, 8 bytes each, held while components are yielded) and the enclosed background
+    voxels, so nothing of the volume's size is allocated. Holes: the enclosed background regions of the
+    whole mask are found once; a region enclosed by one component alone is that component's hole and
+    is filled directly; only components that share a region with another (one nested in the other's
+    hole) are filled crop by crop.
     """
     mask = np.asarray(mask, bool)
     shape = np.array(mask.shape)
@@ -111,8 +112,6 @@ def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = T
     order = np.argsort(labels, kind="stable")  # by label, raster order within each
     flat, labels = flat[order], labels[order]
     del order
-    ijk = np.stack(np.unravel_index(flat, mask.shape), axis=1)
-    del flat
     starts = np.r_[0, np.flatnonzero(np.diff(labels)) + 1]
     sizes = np.diff(np.r_[starts, len(labels)])
     comp_labels = labels[starts]
@@ -129,7 +128,7 @@ def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = T
         if size < min_voxels:
             continue
         kept += 1
-        vox = ijk[start : start + size]
+        vox = np.stack(np.unravel_index(flat[start : start + size], mask.shape), axis=1)
         lo = vox.min(axis=0)
         hi = vox.max(axis=0) + 1
         touches = bool(np.any(lo == 0) or np.any(hi == shape))
@@ -141,6 +140,7 @@ def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = T
             crop[h[:, 0], h[:, 1], h[:, 2]] = True
         if lab in nested_set:
             crop[1:-1, 1:-1, 1:-1] = _fill_holes(crop[1:-1, 1:-1, 1:-1])
+        del vox, local  # not held while the consumer works on the component
         yield Component(kept, lo - 1, crop, touches)
 
 
@@ -156,7 +156,7 @@ def thin(mask: np.ndarray) -> np.ndarray:
     T.-C. Lee, R. L. Kashyap, C.-N. Chu, "Building skeleton models via 3-D medial surface/axis thinning
     algorithms", CVGIP: Graphical Models and Image Processing 56(6):462-478, 1994.
     """
-    skel = skeletonize(mask).astype(bool)
+    skel = skeletonize(mask).astype(bool, copy=False)
     if mask.any() and not skel.any():
         edt = ndimage.distance_transform_cdt(mask, metric="chessboard")
         skel = np.zeros_like(mask)
