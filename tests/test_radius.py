@@ -6,6 +6,8 @@ Independent references used below:
 - :func:`nibabel.affines.apply_affine` for index -> world mm.
 - Euclidean distances are invariant under rotations and reflections (orthogonal maps), so a rotated
   affine R diag(spacing) gives the same distances as diag(spacing).
+- :func:`scipy.ndimage.binary_dilation` for the outer boundary voxels, and a default
+  :class:`scipy.spatial.cKDTree` for nearest-neighbour distances.
 """
 
 from __future__ import annotations
@@ -14,9 +16,11 @@ import numpy as np
 import pytest
 from nibabel.affines import apply_affine
 from scipy import ndimage
+from scipy.spatial import cKDTree
 
+from vesselgeom import crosssection, radius
 from vesselgeom.phantoms import random_rotation
-from vesselgeom.radius import BoundaryDistance
+from vesselgeom.radius import BoundaryDistance, _outer_boundary_slabs
 
 SPACING = (0.7, 1.0, 1.6)
 
@@ -101,3 +105,37 @@ def test_boundary_distance_equals_scipy_edt_on_random_masks():
         got = BoundaryDistance(mask, aff).at_index(ijk)
         ref = ndimage.distance_transform_edt(mask, sampling=spacing)[mask]
         np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("planes", [1, 2, 5, 16])
+def test_outer_boundary_slabs_match_scipy_dilation(planes):
+    # scipy reference: argwhere(binary_dilation(mask, 6-connected) & ~mask), in raster order, whatever
+    # the slab size (with and without a background border, which takes the whole-array path)
+    rng = np.random.default_rng(planes)
+    for trial in range(12):
+        shape = tuple(rng.integers(3, 25, 3))
+        mask = ndimage.gaussian_filter(rng.normal(size=shape), 1.5) > rng.uniform(-0.1, 0.3)
+        if trial % 3:
+            mask[[0, -1]] = False
+            mask[:, [0, -1]] = False
+            mask[:, :, [0, -1]] = False
+        six = ndimage.generate_binary_structure(3, 1)
+        ref = np.argwhere(ndimage.binary_dilation(mask, structure=six) & ~mask)
+        got = np.concatenate(list(_outer_boundary_slabs(mask, planes=planes)))
+        np.testing.assert_array_equal(got, ref)
+
+
+def test_tree_shape_and_threads_do_not_change_distances(monkeypatch):
+    # scipy reference: a default cKDTree over the same boundary voxel centres (world mm) queried on one
+    # thread; BoundaryDistance (other leaf size, threads) gives the same distances bit for bit
+    mask = _blob(11, shape=(40, 36, 30))
+    aff = _affine(random_rotation(11) @ np.diag(SPACING))
+    rng = np.random.default_rng(11)
+    pts = apply_affine(aff, np.argwhere(mask) + rng.uniform(-0.5, 0.5, (int(mask.sum()), 3)))
+    six = ndimage.generate_binary_structure(3, 1)
+    outer = np.argwhere(ndimage.binary_dilation(mask, structure=six) & ~mask).astype(float)
+    ref, _ = cKDTree(outer @ aff[:3, :3].T + aff[:3, 3]).query(pts)
+    monkeypatch.setattr(radius, "_PARALLEL_POINTS", 1)
+    for threads in (1, 2, 3):
+        monkeypatch.setattr(crosssection, "_THREADS", threads)
+        np.testing.assert_array_equal(BoundaryDistance(mask, aff)(pts), ref)

@@ -8,6 +8,8 @@ Independent references used below:
 - Polynomial reproduction: a difference penalty of order q leaves polynomials of degree < q
   unpenalised (Eilers and Marx 1996), so 2 or 3 points are fitted exactly by the line or the quadratic
   through them.
+- B-spline basis values and spline derivatives: :meth:`scipy.interpolate.BSpline.design_matrix` and
+  :class:`scipy.interpolate.BSpline` evaluation; cumulative sums: :func:`numpy.cumsum`.
 """
 
 from __future__ import annotations
@@ -15,9 +17,18 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy.integrate import quad
+from scipy.interpolate import BSpline
 
 from vesselgeom.frames import frenet_frame
-from vesselgeom.spline import arc_length_samples, fit_curve
+from vesselgeom.spline import (
+    CurvePack,
+    _segment_cumsum,
+    _uniform_bases,
+    _uniform_basis,
+    arc_length_samples,
+    fit_curve,
+    fit_curves,
+)
 
 
 def _helix_points(a: float, b: float, turns: float, step: float) -> np.ndarray:
@@ -155,3 +166,67 @@ def test_fewer_than_two_distinct_points_returns_none(pts, closed):
 def test_no_points_returns_none():
     # Documented: None when fewer than two distinct points remain (here none at all).
     assert fit_curve(np.zeros((0, 3)), smoothing_mm=2.0) is None
+
+
+def test_segment_cumsum_matches_numpy_run_by_run():
+    # numpy reference: np.cumsum of each run alone, bit for bit (short runs share one padded table,
+    # long ones are summed one by one; empty and single-element runs included)
+    rng = np.random.default_rng(3)
+    for _ in range(100):
+        lengths = rng.integers(0, 300, rng.integers(1, 40))
+        lengths[rng.random(len(lengths)) < 0.2] = rng.integers(0, 2)
+        values = rng.normal(size=lengths.sum()) * 10 ** rng.uniform(-3, 3, lengths.sum())
+        bounds = np.r_[0, np.cumsum(lengths)]
+        ref = [np.cumsum(values[bounds[i] : bounds[i + 1]]) for i in range(len(lengths))]
+        got = _segment_cumsum(values, lengths)
+        np.testing.assert_array_equal(got, np.concatenate(ref) if ref else got)
+
+
+@pytest.mark.parametrize("k", [0, 1, 2, 3, 4, 5])
+def test_uniform_basis_matches_scipy(k):
+    # scipy reference: BSpline.design_matrix on the unit-spaced knots around interval [0, 1]; the
+    # several-degree recurrence gives each degree exactly as computed alone
+    f = np.r_[0.0, np.random.default_rng(k).uniform(0, 1, 200), 1.0 - 1e-12]
+    t = np.arange(-k, k + 2, dtype=float)
+    ref = BSpline.design_matrix(f, t, k).toarray()
+    np.testing.assert_allclose(_uniform_basis(f, k), ref, rtol=0, atol=1e-13)
+    for deg, b in _uniform_bases(f, list(range(k + 1))).items():
+        np.testing.assert_array_equal(b, _uniform_basis(f, deg))
+
+
+def test_pack_derivatives_match_scipy_bspline():
+    # scipy reference: BSpline.__call__(u, nu) of each fitted curve, for nu = 0..3 at once
+    curves = [_helix_points(10.0, 3.0, 1.0, 0.7), _helix_points(6.0, -2.0, 0.5, 0.4)[::-1] + 5.0]
+    fits = fit_curves(curves, smoothing_mm=[2.0, 3.0])
+    pack = CurvePack(fits)
+    rng = np.random.default_rng(0)
+    gid = rng.integers(0, 2, 300)
+    u = rng.uniform(pack.u0[gid], pack.u1[gid])
+    got = pack.derivatives(gid, u, (0, 1, 2, 3))
+    for nu, values in zip((0, 1, 2, 3), got, strict=True):
+        ref = np.concatenate([fits[g].spline(u[gid == g], nu) for g in (0, 1)])
+        order = np.argsort(gid, kind="stable")
+        scale = np.max(np.abs(ref))
+        np.testing.assert_allclose(values[order], ref, rtol=0, atol=1e-11 * scale)
+        np.testing.assert_array_equal(values, pack(gid, u, nu))
+
+
+def test_fit_curves_equals_fit_curve_bit_for_bit():
+    # documented in fit_curves: each curve's fit exactly as fit_curve would return it, whatever is fitted
+    # with it (reference: the curve fitted alone); shuffled batches of open and closed curves
+    rng = np.random.default_rng(5)
+    curves = [
+        _helix_points(8.0, 2.0, rng.uniform(0.3, 1.5), 0.6) + rng.uniform(-50, 50, 3) for _ in range(12)
+    ]
+    curves += [_ring_points(5.0, 40), np.array([[0.0, 0.0, 0.0], [1.0, 1.0, 0.0], [2.0, 0.0, 1.0]])]
+    closed = [False] * 12 + [True, False]
+    smooth = rng.uniform(1.0, 4.0, len(curves))
+    alone = [fit_curve(c, smoothing_mm=s, closed=cl) for c, s, cl in zip(curves, smooth, closed, strict=True)]
+    for perm in (np.arange(len(curves)), rng.permutation(len(curves))):
+        batch = fit_curves(
+            [curves[i] for i in perm], smoothing_mm=smooth[perm], closed=[closed[i] for i in perm]
+        )
+        for i, fit in zip(perm, batch, strict=True):
+            np.testing.assert_array_equal(fit.spline.c, alone[i].spline.c)
+            np.testing.assert_array_equal(fit.spline.t, alone[i].spline.t)
+            assert (fit.u0, fit.u1, fit.degree) == (alone[i].u0, alone[i].u1, alone[i].degree)

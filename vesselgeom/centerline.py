@@ -1,9 +1,9 @@
 """From ordered skeleton paths in world mm to smooth, arc-length parametrised centrelines with their frames.
 
 Per branch: fit a penalised quintic spline (smoothing tied to the vessel radius), recentre points
-sampled along it on the mask's cross-section (batched over all branches of a component), refit, repeat;
-extend terminal ends that thinning retracted; resample at a fixed arc-length step; compute the
-Frenet-Serret frame, curvature, torsion and radius at every sample.
+sampled along it on the mask's cross-section, refit, repeat; extend terminal ends that thinning
+retracted; resample at a fixed arc-length step; compute the Frenet-Serret frame, curvature, torsion and
+radius at every sample. Branches of a component are processed together in batches of bounded size.
 """
 
 from __future__ import annotations
@@ -16,9 +16,16 @@ from .crosssection import CrossSection
 from .frames import Frame, frenet_frame
 from .radius import BoundaryDistance
 from .settings import Settings
-from .spline import CurveFit, CurvePack, _linspace, arc_length_samples_many, fit_curves
+from .spline import CurveFit, CurvePack, _fit_packed, _linspace, arc_length_samples_many, fit_curves
 
 __all__ = ["Centerline", "BranchInput", "trace_centerlines"]
+
+# bounds on one batch of trace_centerlines: its temporaries grow with the points traced at once
+_BATCH_POINTS = 8_000
+_BATCH_BRANCHES = 1000
+# None: recentring discs sampled on the full grid (CrossSection.centroids). A number: samples at most this
+# many voxels apart (CrossSection.centroids_spaced), fewer on small discs; changes results slightly.
+_DISC_SPACING_VOXELS: float | None = None
 
 
 @dataclass(frozen=True)
@@ -113,13 +120,23 @@ def _split(values: np.ndarray, gid: np.ndarray, n: int) -> list[np.ndarray]:
     return [values[bounds[i] : bounds[i + 1]] for i in range(n)]
 
 
-def _group_median(values: list[np.ndarray]) -> np.ndarray:
-    """np.nanmedian of each array (NaN for an empty or all-NaN one)."""
-    out = np.full(len(values), np.nan)
-    for i, v in enumerate(values):
-        v = v[~np.isnan(v)]
-        if v.size:
-            out[i] = np.median(v)
+def _group_median(values: np.ndarray, gid: np.ndarray, n: int) -> np.ndarray:
+    """np.nanmedian of ``values`` in each group ``gid`` (0..n-1); NaN for an empty or all-NaN group.
+
+    Sorted within groups at once; the middle value, or the mean of the two middle values computed as
+    np.median does ((a + b) / 2), so the result is the same as np.median of each group alone.
+    """
+    out = np.full(n, np.nan)
+    ok = ~np.isnan(values)
+    v, g = values[ok], gid[ok]
+    order = np.lexsort((v, g))
+    v, g = v[order], g[order]
+    count = np.bincount(g, minlength=n)
+    has = count > 0
+    start = (np.cumsum(count) - count)[has]
+    c = count[has]
+    lo, hi = v[start + (c - 1) // 2], v[start + c // 2]
+    out[has] = np.where(c % 2 == 1, lo, (lo + hi) / 2)
     return out
 
 
@@ -164,8 +181,8 @@ def _extend_free_ends_many(
     u0, u1 = pack.u0[bi], pack.u1[bi]
     u_end = np.where(side == 0, u0, u1)
     u_a = np.clip(u_end + sign * scales[bi], u0, u1)
-    p_a = pack(bi, u_a)
-    direction = -sign[:, None] * _unit(pack(bi, u_a, 1))
+    p_a, d_a = pack.derivatives(bi, u_a, (0, 1))
+    direction = -sign[:, None] * _unit(d_a)
     r_a = boundary(p_a)
     reach = np.abs(u_end - u_a) + 8.0 * np.maximum(r_a, voxel)
     # rays of samples every quarter voxel, all ends at once (as np.arange(0, reach + dq, dq))
@@ -182,50 +199,55 @@ def _extend_free_ends_many(
     i = first_out[hit]
     at0 = i == start[hit]
     j = np.maximum(i - 1, 0)
-    frac = d[j] + (vals[j] - 0.5) / (vals[j] - vals[i]) * (d[i] - d[j])
+    with np.errstate(divide="ignore", invalid="ignore"):  # (at0 rows, where j == i, are not used)
+        frac = d[j] + (vals[j] - 0.5) / (vals[j] - vals[i]) * (d[i] - d[j])
     exit_d[hit] = np.where(at0, 0.0, frac)
     stub_len = np.maximum(exit_d - r_a, 0.0)
-    for e, key in enumerate(ends):
-        if key in targets:  # up to the junction's projection on the end tangent
-            stub_len[e] = max(float(np.dot(targets[key] - p_a[e], direction[e])), 0.0)
-    stubs: dict[tuple[int, int], np.ndarray] = {}
-    for e, (b_i, s_i) in enumerate(ends):
-        n = max(int(np.ceil(stub_len[e] / (0.5 * voxel))), 1)
-        stub = p_a[e] + np.linspace(0.0, stub_len[e], n + 1)[1:, None] * direction[e]
-        stubs[(b_i, s_i)] = stub
+    for e in [e for e, key in enumerate(ends) if key in targets]:  # up to the junction's projection
+        stub_len[e] = max(float(np.dot(targets[ends[e]] - p_a[e], direction[e])), 0.0)
+    # stub points every half voxel, as np.linspace(0, stub_len, n + 1)[1:] along the direction
+    n_stub = np.maximum(np.ceil(stub_len / (0.5 * voxel)).astype(np.intp), 1)
+    lin, g_lin = _linspace(np.zeros(len(ends)), stub_len, n_stub + 1)
+    not_first = np.ones(len(lin), bool)
+    not_first[np.cumsum(n_stub + 1) - (n_stub + 1)] = False
+    lin, g_lin = lin[not_first], g_lin[not_first]
+    stub_pts = p_a[g_lin] + lin[:, None] * direction[g_lin]
+    stub_at = np.cumsum(n_stub) - n_stub
     # the kept part of each extended curve, densely sampled, between its stubs
-    lo = {b_i: pack.u0[b_i] for b_i, _ in ends}
-    hi = {b_i: pack.u1[b_i] for b_i, _ in ends}
-    for e, (b_i, s_i) in enumerate(ends):
-        if s_i == 0:
-            lo[b_i] = u_a[e]
-        else:
-            hi[b_i] = u_a[e]
-    todo = [b_i for b_i in dict.fromkeys(bi.tolist()) if lo[b_i] < hi[b_i]]
-    if not todo:
+    lo, hi = pack.u0.copy(), pack.u1.copy()
+    lo[bi[side == 0]] = u_a[side == 0]
+    hi[bi[side == 1]] = u_a[side == 1]
+    todo = np.unique(bi)
+    todo = todo[lo[todo] < hi[todo]]
+    if not len(todo):
         return fits, ext
-    t_lo = np.array([lo[b_i] for b_i in todo])
-    t_hi = np.array([hi[b_i] for b_i in todo])
+    t_lo, t_hi = lo[todo], hi[todo]
     num = np.maximum(np.ceil((t_hi - t_lo) / (0.5 * voxel)).astype(np.intp), 2) + 1
     uu, gg = _linspace(t_lo, t_hi, num)
-    kept = _split(pack(np.asarray(todo, np.intp)[gg], uu), gg, len(todo))
-    pts = [
-        np.concatenate(
-            [
-                *([stubs[(b_i, 0)][::-1]] if (b_i, 0) in stubs else []),
-                mid,
-                *([stubs[(b_i, 1)]] if (b_i, 1) in stubs else []),
-            ]
-        )
-        for b_i, mid in zip(todo, kept, strict=True)
-    ]
-    refits = fit_curves(pts, smoothing_mm=[settings.smoothing_radii * scales[b_i] for b_i in todo])
-    lengths = {(b_i, s_i): stub_len[e] for e, (b_i, s_i) in enumerate(ends)}
-    for b_i, refit in zip(todo, refits, strict=True):
+    mid_pts = pack(todo[gg], uu)
+    # each curve's points: its start stub reversed, the kept part, its end stub (rows of both arrays)
+    pool = np.concatenate([stub_pts, mid_pts])
+    end_of = np.full((len(fits), 2), -1, np.intp)
+    end_of[bi, side] = np.arange(len(ends))
+    e0, e1 = end_of[todo, 0], end_of[todo, 1]
+    seg_n = np.stack(
+        [np.where(e0 >= 0, n_stub[e0], 0), num, np.where(e1 >= 0, n_stub[e1], 0)], axis=1
+    ).ravel()
+    seg_base = np.stack(
+        [stub_at[e0] + n_stub[e0] - 1, len(stub_pts) + np.cumsum(num) - num, stub_at[e1]], axis=1
+    ).ravel()
+    seg_dir = np.tile([-1, 1, 1], len(todo))
+    k_in = np.arange(seg_n.sum()) - np.repeat(np.cumsum(seg_n) - seg_n, seg_n)
+    rows = np.repeat(seg_base, seg_n) + np.repeat(seg_dir, seg_n) * k_in
+    counts = seg_n.reshape(-1, 3).sum(axis=1)
+    refits = _fit_packed(pool[rows], counts, settings.smoothing_radii * scales[todo])
+    lengths = np.zeros((len(fits), 2))
+    lengths[bi, side] = stub_len
+    for b_i, refit in zip(todo.tolist(), refits, strict=True):
         if refit is None:
             continue
         fits[b_i] = refit
-        ext[b_i] = [lengths.get((b_i, 0), 0.0), lengths.get((b_i, 1), 0.0)]
+        ext[b_i] = lengths[b_i]
     return fits, ext
 
 
@@ -269,6 +291,24 @@ def _cut_near_junctions(
     return paths, targets
 
 
+def _batches(branches: list[BranchInput]) -> list[slice]:
+    """Consecutive runs of branches (slices) to trace together.
+
+    Each run holds at most ``_BATCH_POINTS`` skeleton points and ``_BATCH_BRANCHES`` branches; a longer
+    single branch is a batch of its own.
+    """
+    out, lo, acc = [], 0, 0
+    for i, b in enumerate(branches):
+        n = len(b.path)
+        if i > lo and (acc + n > _BATCH_POINTS or i - lo >= _BATCH_BRANCHES):
+            out.append(slice(lo, i))
+            lo, acc = i, 0
+        acc += n
+    if lo < len(branches):
+        out.append(slice(lo, len(branches)))
+    return out
+
+
 def trace_centerlines(
     branches: list[BranchInput],
     *,
@@ -279,8 +319,11 @@ def trace_centerlines(
 ) -> list[Centerline | None]:
     """Trace every branch of one component; None for a branch that cannot be fitted.
 
-    All branches are processed together: spline fits share one banded solve and evaluations, mask
-    sampling and radius queries are made once per step for all branches.
+    Branches are processed in batches of bounded size (``_BATCH_POINTS`` skeleton points, at most
+    ``_BATCH_BRANCHES`` branches), so memory does not grow with the component's size. Within a batch
+    all branches are processed together: spline fits share one banded solve and evaluations, mask
+    sampling and radius queries are made once per step for all branches. Each branch's result does not
+    depend on the other branches of its batch.
 
     Parameters
     ----------
@@ -292,14 +335,38 @@ def trace_centerlines(
     voxel_mm : float
         Mean voxel size in mm (sets minimum scales and sampling).
     settings : Settings
+
+    Returns
+    -------
+    list of Centerline or None
+        One per branch, in order.
     """
+    out: list[Centerline | None] = []
+    for sl in _batches(branches):
+        out.extend(_trace_batch(branches[sl], section, boundary, voxel_mm, settings))
+    return out
+
+
+def _trace_batch(
+    branches: list[BranchInput],
+    section: CrossSection,
+    boundary: BoundaryDistance,
+    voxel_mm: float,
+    settings: Settings,
+) -> list[Centerline | None]:
+    """:func:`trace_centerlines` of one batch, all its branches at once."""
     nb = len(branches)
     if nb == 0:
         return []
     step = settings.step_mm or settings.step_voxels * voxel_mm
     lens = np.array([len(b.path) for b in branches])
-    r_all = _split(boundary(np.concatenate([b.path for b in branches])), np.repeat(np.arange(nb), lens), nb)
-    core = _group_median([r[1:-1] if len(r) > 4 else r for r in r_all])
+    r_flat = boundary(np.concatenate([b.path for b in branches]))
+    g_flat = np.repeat(np.arange(nb), lens)
+    r_all = _split(r_flat, g_flat, nb)
+    # median radius of each branch, leaving out its end points when it has more than four
+    j_flat = np.arange(len(g_flat)) - np.repeat(np.cumsum(lens) - lens, lens)
+    inner = (lens[g_flat] <= 4) | ((j_flat > 0) & (j_flat < lens[g_flat] - 1))
+    core = _group_median(r_flat[inner], g_flat[inner], nb)
     floor_scale = settings.min_scale_voxels * voxel_mm
     # as max(median, floor) with a NaN median (no boundary) propagating
     scales = np.where(np.isnan(core), np.nan, np.maximum(np.nan_to_num(core, nan=0.0), floor_scale))
@@ -314,12 +381,17 @@ def trace_centerlines(
         g, u = _even_samples_many(pack, voxel_mm)
         if not len(u):
             break
-        centres = pack(g, u)
-        tangents = _unit(pack(g, u, 1))
+        centres, d1 = pack.derivatives(g, u, (0, 1))
+        tangents = _unit(d1)
         rad = boundary(centres)
         disc = 1.5 * np.maximum(rad, voxel_mm) + voxel_mm
-        moved, _ = section.centroids(centres, tangents, disc)
-        refits = fit_curves(_split(moved, g, nb), smoothing_mm=smoothing, closed=closed)
+        if _DISC_SPACING_VOXELS is None:
+            moved, _ = section.centroids(centres, tangents, disc)
+        else:
+            moved, _ = section.centroids_spaced(
+                centres, tangents, disc, spacing_mm=_DISC_SPACING_VOXELS * voxel_mm
+            )
+        refits = _fit_packed(moved, np.bincount(g, minlength=nb), smoothing, closed)
         fits = [
             new if (old is not None and new is not None) else old
             for old, new in zip(fits, refits, strict=True)
@@ -335,13 +407,14 @@ def trace_centerlines(
     frame = frenet_frame(d1, d2, d3, curvature_floor=floor)
     # torsion from a smoother fit of the same curve, parametrised (to 1e-4) by the same arc length
     g, u = _even_samples_many(pack, 0.5 * voxel_mm)
-    dense = _split(pack(g, u), g, nb)
-    smooth = fit_curves(dense, smoothing_mm=settings.torsion_smoothing_radii * scales, closed=closed)
+    smooth = _fit_packed(
+        pack(g, u), np.bincount(g, minlength=nb), settings.torsion_smoothing_radii * scales, closed
+    )
     smooth = [s if f is not None else None for s, f in zip(smooth, fits, strict=True)]
     has = np.array([s is not None for s in smooth])[gid]
     spack = CurvePack(smooth)
     a = np.clip(arc[has], spack.u0[gid[has]], spack.u1[gid[has]])
-    tau = frenet_frame(spack(gid[has], a, 1), spack(gid[has], a, 2), spack(gid[has], a, 3)).torsion
+    tau = frenet_frame(*spack.derivatives(gid[has], a, (1, 2, 3))).torsion
     torsion = frame.torsion.copy()
     torsion[has] = np.where(np.isfinite(frame.torsion[has]), tau, np.nan)
     radius = boundary(r)

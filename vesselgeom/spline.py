@@ -76,16 +76,32 @@ def _uniform_basis(f: np.ndarray, k: int) -> np.ndarray:
     (de Boor 1978, BSPLVB) with the knot differences of a uniform knot vector, where every denominator
     equals the current degree.
     """
-    b = np.zeros((len(f), k + 1))
-    b[:, 0] = 1.0
-    for j in range(1, k + 1):
-        saved = np.zeros(len(f))
+    return _uniform_bases(f, (k,))[k]
+
+
+def _uniform_bases(f: np.ndarray, degrees: Sequence[int]) -> dict[int, np.ndarray]:
+    """:func:`_uniform_basis` for several degrees, from one run of the recurrence.
+
+    The recurrence for degree k passes through the bases of every lower degree, so each is taken on the
+    way, with the same values as computed alone. Columns are stored contiguously while they are built;
+    the (n, degree + 1) results are transposed views.
+    """
+    top = max(degrees)
+    b = np.zeros((top + 1, len(f)))
+    b[0] = 1.0
+    out = {0: b[:1].T.copy()} if 0 in degrees else {}
+    saved = np.empty(len(f))
+    temp = np.empty(len(f))
+    for j in range(1, top + 1):
+        saved[:] = 0.0
         for r in range(j):
-            temp = b[:, r] / j
-            b[:, r] = saved + (r + 1 - f) * temp
-            saved = (f + j - r - 1) * temp
-        b[:, j] = saved
-    return b
+            np.divide(b[r], j, out=temp)
+            np.add(saved, (r + 1 - f) * temp, out=b[r])
+            np.multiply(f + j - r - 1, temp, out=saved)  # as written: rounded left to right
+        b[j] = saved
+        if j in degrees:
+            out[j] = b[: j + 1].T.copy() if j < top else b.T
+    return out
 
 
 def _linspace(start: np.ndarray, stop: np.ndarray, num: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -101,24 +117,56 @@ def _linspace(start: np.ndarray, stop: np.ndarray, num: np.ndarray) -> tuple[np.
     return y, gid
 
 
-def _penalised_many(curves: list[tuple[np.ndarray, np.ndarray, float]], k: int) -> list[BSpline | None]:
+def _segment_cumsum(values: np.ndarray, lengths: np.ndarray) -> np.ndarray:
+    """``np.cumsum`` of each consecutive run of ``values`` (lengths ``lengths``), run by run.
+
+    One cumulative sum over all runs minus each run's starting value would carry the rounding of the
+    preceding runs' total into every run, so a curve's result would depend on the other curves batched
+    with it; run by run it is the same, bit for bit, as for the curve alone. Short runs of similar
+    length (within a factor of two) are laid out as the columns of a zero-padded array and summed down
+    the columns at once, which adds in the same order as a cumulative sum of each run alone.
+    """
+    lengths = np.asarray(lengths, np.intp)
+    out = np.empty_like(values)
+    starts = np.cumsum(lengths) - lengths
+    size_class = np.ceil(np.log2(np.maximum(lengths, 1))).astype(np.intp)
+    for c in np.unique(size_class[lengths > 0]).tolist():
+        runs = np.flatnonzero((size_class == c) & (lengths > 0))
+        if c > 6:  # long runs: one call each is cheaper than the table's indexing
+            for lo, n_i in zip(starts[runs].tolist(), lengths[runs].tolist(), strict=True):
+                np.cumsum(values[lo : lo + n_i], out=out[lo : lo + n_i])
+            continue
+        n = lengths[runs]
+        col = np.repeat(np.arange(len(runs)), n)
+        row = np.arange(len(col)) - np.repeat(np.cumsum(n) - n, n)
+        src = np.repeat(starts[runs], n) + row
+        table = np.zeros((int(n.max()), len(runs)), values.dtype)
+        table[row, col] = values[src]
+        np.cumsum(table, axis=0, out=table)
+        out[src] = table[row, col]
+    return out
+
+
+def _penalised_many(
+    u: np.ndarray, pts: np.ndarray, n_pts: np.ndarray, cutoff: np.ndarray, k: int
+) -> list[BSpline | None]:
     """P-spline fits of many open curves: min |y - B c|^2 + lam |D c|^2, D the third-difference operator.
 
-    ``curves`` holds (u, points, cutoff) per curve. The knot spacing is ``cutoff / _KNOTS_PER_CUTOFF``
+    The curves are consecutive runs of ``n_pts`` (each >= 2) parameter values ``u`` (m,) and points
+    ``pts`` (m, 3), with one ``cutoff`` (mm) each. The knot spacing is ``cutoff / _KNOTS_PER_CUTOFF``
     and ``lam`` puts the half-power point of the penalty's transfer function
     1 / (1 + lam (2 sin(w / 2))^(2q)) at wavelength ``cutoff``. The banded normal equations are assembled
     directly from the uniform basis (each point touches k + 1 consecutive coefficients) for all curves
     at once, as one block-diagonal banded system solved by a single banded Cholesky factorisation.
     """
-    if not curves:
+    n_curves = len(n_pts)
+    if not n_curves:
         return []
-    n_pts = np.array([len(c[0]) for c in curves])
-    u = np.concatenate([c[0] for c in curves])
-    pts = np.concatenate([c[1] for c in curves])
-    gid = np.repeat(np.arange(len(curves)), n_pts)
-    u0 = np.array([c[0][0] for c in curves])
-    u1 = np.array([c[0][-1] for c in curves])
-    delta = np.array([c[2] for c in curves]) / _KNOTS_PER_CUTOFF
+    ends = np.cumsum(n_pts)
+    gid = np.repeat(np.arange(n_curves), n_pts)
+    u0 = u[ends - n_pts]
+    u1 = u[ends - 1]
+    delta = cutoff / _KNOTS_PER_CUTOFF
     intervals = np.maximum(1, np.ceil((u1 - u0) / delta)).astype(np.intp)
     step = (u1 - u0) / intervals  # knots t_j = u0 + step * j, j = -k .. intervals + k
     n_coef = intervals + k
@@ -161,21 +209,25 @@ def _penalised_many(curves: list[tuple[np.ndarray, np.ndarray, float]], k: int) 
         coef = solveh_banded(ab, rhs)
     except np.linalg.LinAlgError:  # some block is singular: solve block by block
         coef = np.full_like(rhs, np.nan)
-        for i in range(len(curves)):
+        for i in range(n_curves):
             sl = slice(off[i], off[i] + n_coef[i])
             try:
                 coef[sl] = solveh_banded(ab[:, sl], rhs[sl])
             except np.linalg.LinAlgError:
                 pass
-    out: list[BSpline | None] = []
-    for i in range(len(curves)):
-        c = coef[off[i] : off[i] + n_coef[i]]
-        if not np.all(np.isfinite(c)):
-            out.append(None)
-            continue
-        t = u0[i] + step[i] * np.arange(-k, intervals[i] + k + 1)
-        out.append(BSpline.construct_fast(t, c, k))
-    return out
+    finite = np.logical_and.reduceat(np.isfinite(coef).all(axis=1), off)
+    # all knot vectors at once, as u0 + step * np.arange(-k, intervals + k + 1) per curve
+    n_knots = n_coef + k + 1
+    g_knot = np.repeat(np.arange(n_curves), n_knots)
+    j_knot = np.arange(len(g_knot)) - np.repeat(np.cumsum(n_knots) - n_knots + k, n_knots)
+    knots = u0[g_knot] + step[g_knot] * j_knot
+    k_off = (np.cumsum(n_knots) - n_knots).tolist()
+    return [
+        BSpline.construct_fast(knots[t0 : t0 + nk], coef[c0 : c0 + nc], k) if ok else None
+        for ok, t0, nk, c0, nc in zip(
+            finite.tolist(), k_off, n_knots.tolist(), off.tolist(), n_coef.tolist(), strict=True
+        )
+    ]
 
 
 def _penalised_periodic(
@@ -247,40 +299,52 @@ def fit_curves(
     list of CurveFit or None
         Each curve's fit exactly as :func:`fit_curve` would return it.
     """
-    closed = [False] * len(points) if closed is None else list(closed)
-    k = 5
-    out: list[CurveFit | None] = [None] * len(points)
     arrays = [np.asarray(p, float).reshape(-1, 3) for p in points]
-    for i, c in enumerate(closed):
-        if c and len(arrays[i]) >= 2:
-            out[i] = _fit_closed(arrays[i], float(smoothing_mm[i]), k)
-    todo = [i for i, c in enumerate(closed) if not c and len(arrays[i]) >= 2]
-    if not todo:
+    counts = np.array([len(a) for a in arrays], np.intp)
+    allp = np.concatenate(arrays) if arrays else np.zeros((0, 3))
+    return _fit_packed(allp, counts, np.asarray(smoothing_mm, float), closed)
+
+
+def _fit_packed(
+    allp: np.ndarray, counts: np.ndarray, smoothing_mm: np.ndarray, closed: Sequence[bool] | None = None
+) -> list[CurveFit | None]:
+    """:func:`fit_curves` of curves given as consecutive runs of ``counts`` rows of ``allp`` (m, 3)."""
+    n_all = len(counts)
+    closed_arr = np.zeros(n_all, bool) if closed is None else np.asarray(closed, bool)
+    k = 5
+    out: list[CurveFit | None] = [None] * n_all
+    starts = np.cumsum(counts) - counts
+    for i in np.flatnonzero(closed_arr & (counts >= 2)).tolist():
+        out[i] = _fit_closed(allp[starts[i] : starts[i] + counts[i]], float(smoothing_mm[i]), k)
+    is_todo = ~closed_arr & (counts >= 2)
+    todo = np.flatnonzero(is_todo)
+    if not len(todo):
         return out
+    if len(todo) < n_all:
+        allp = allp[np.repeat(is_todo, counts)]
     # chord-length parameter of every open curve at once; repeated points are dropped
-    n = np.array([len(arrays[i]) for i in todo])
-    allp = np.concatenate([arrays[i] for i in todo])
+    n = counts[todo]
     steps = np.linalg.norm(np.diff(allp, axis=0), axis=1)
     same = np.ones(len(allp), bool)
     same[np.cumsum(n)[:-1]] = False  # a curve's first point
     same[0] = False
     moved = np.r_[False, steps > 1e-9]
     keep = ~same | moved
-    cum = np.cumsum(np.where(same & moved, np.r_[0.0, steps], 0.0))
-    u_all = cum - np.repeat(cum[np.cumsum(n) - n], n)
+    u_all = _segment_cumsum(np.where(same & moved, np.r_[0.0, steps], 0.0), n)
     gid = np.repeat(np.arange(len(todo)), n)[keep]
     u_all, allp = u_all[keep], allp[keep]
-    bounds = np.r_[0, np.cumsum(np.bincount(gid, minlength=len(todo)))]
-    curves = []
-    idx = []
-    for j, i in enumerate(todo):
-        lo, hi = bounds[j], bounds[j + 1]
-        if hi - lo >= 2:
-            idx.append(i)
-            curves.append((u_all[lo:hi], allp[lo:hi], 2.0 * float(smoothing_mm[i])))
-    for i, (u, _p, _c), spl in zip(idx, curves, _penalised_many(curves, k), strict=True):
+    n_kept = np.bincount(gid, minlength=len(todo))
+    fit = n_kept >= 2
+    if not fit.all():
+        rows = np.repeat(fit, n_kept)
+        u_all, allp, n_kept = u_all[rows], allp[rows], n_kept[fit]
+    idx = todo[fit].tolist()
+    ends = np.cumsum(n_kept)
+    u_first, u_last = u_all[ends - n_kept].tolist(), u_all[ends - 1].tolist()
+    splines = _penalised_many(u_all, allp, n_kept, 2.0 * smoothing_mm[todo[fit]], k)
+    for i, spl, a, b, m in zip(idx, splines, u_first, u_last, n_kept.tolist(), strict=True):
         if spl is not None:
-            out[i] = CurveFit(spl, float(u[0]), float(u[-1]), False, _degree(len(u)))
+            out[i] = CurveFit(spl, a, b, False, _degree(m))
     return out
 
 
@@ -349,50 +413,64 @@ class CurvePack:
 
     def __init__(self, fits: Sequence[CurveFit | None]) -> None:
         self.fits = list(fits)
-        ok = [f for f in self.fits if f is not None]
-        self.k = ok[0].spline.k if ok else 5
-        n_c = np.array([len(f.spline.c) if f is not None else 0 for f in self.fits], np.intp)
-        self._off = np.cumsum(n_c) - n_c
-        self._coef = np.concatenate([f.spline.c for f in ok]) if ok else np.zeros((0, 3))
+        splines = [f.spline for f in self.fits if f is not None]
+        self.k = splines[0].k if splines else 5
         k = self.k
-        t = [
-            (f.spline.t[k], f.spline.t[k + 1], len(f.spline.t) - 2 * k - 1) if f else (0, 1, 1)
-            for f in self.fits
-        ]
-        arr = np.array(t, float).reshape(-1, 3)
-        self._t0 = arr[:, 0]
-        self._h = arr[:, 1] - arr[:, 0]
-        self._nint = arr[:, 2].astype(np.intp)
+        knots = [sp.t for sp in splines]  # (each attribute read of a BSpline makes an array view)
+        coefs = [sp.c for sp in splines]
+        valid = [f is not None for f in self.fits]
+        n_c = np.zeros(len(self.fits), np.intp)
+        t = np.tile([0.0, 1.0, 1.0], (len(self.fits), 1))
+        if splines:
+            n_c[valid] = [len(c) for c in coefs]
+            t[valid] = [(kn[k], kn[k + 1], len(kn) - 2 * k - 1) for kn in knots]
+        self._off = np.cumsum(n_c) - n_c
+        self._coef = np.concatenate(coefs) if splines else np.zeros((0, 3))
+        self._t0 = t[:, 0]
+        self._h = t[:, 1] - t[:, 0]
+        self._nint = t[:, 2].astype(np.intp)
         self.u0 = np.array([f.u0 if f is not None else 0.0 for f in self.fits])
         self.u1 = np.array([f.u1 if f is not None else 0.0 for f in self.fits])
         self.closed = np.array([bool(f is not None and f.closed) for f in self.fits])
-        self.valid = np.array([f is not None for f in self.fits])
+        self.valid = np.array(valid, bool)
         self._dcoef: dict[int, np.ndarray] = {}
 
-    def __call__(self, gid: np.ndarray, u: np.ndarray, nu: int = 0, *, chunk: int = 200_000) -> np.ndarray:
-        """Values (nu = 0) or nu-th derivatives, (m, 3), of curve ``gid[i]`` at parameter ``u[i]``."""
-        gid = np.asarray(gid, np.intp)
-        u = np.asarray(u, float)
-        k = self.k
-        if nu not in self._dcoef:  # differenced coefficients: the nu-th derivative's B-spline coefficients
+    def _derivative_coef(self, nu: int) -> np.ndarray:
+        """B-spline coefficients of every curve's nu-th derivative (differenced coefficients)."""
+        if nu not in self._dcoef:
             h = np.repeat(self._h, np.diff(np.r_[self._off, len(self._coef)]))
             d = self._coef
             for _ in range(nu):
                 d = np.diff(d, axis=0, append=d[-1:]) / h[:, None]
             self._dcoef[nu] = np.ascontiguousarray(d)
-        coef = self._dcoef[nu]
-        out = np.empty((len(u), 3))
+        return self._dcoef[nu]
+
+    def __call__(self, gid: np.ndarray, u: np.ndarray, nu: int = 0, *, chunk: int = 200_000) -> np.ndarray:
+        """Values (nu = 0) or nu-th derivatives, (m, 3), of curve ``gid[i]`` at parameter ``u[i]``."""
+        return self.derivatives(gid, u, (nu,), chunk=chunk)[0]
+
+    def derivatives(
+        self, gid: np.ndarray, u: np.ndarray, orders: Sequence[int], *, chunk: int = 200_000
+    ) -> list[np.ndarray]:
+        """``[self(gid, u, nu) for nu in orders]``, sharing the knot search and the basis recurrence."""
+        gid = np.asarray(gid, np.intp)
+        u = np.asarray(u, float)
+        k = self.k
+        coefs = [self._derivative_coef(nu) for nu in orders]
+        outs = [np.empty((len(u), 3)) for _ in orders]
         for lo in range(0, len(u), chunk):
             g, uu = gid[lo : lo + chunk], u[lo : lo + chunk]
             x = (uu - self._t0[g]) / self._h[g]
             first = np.clip(np.floor(x), 0, self._nint[g] - 1).astype(np.intp)
-            basis = _uniform_basis(x - first, k - nu)
+            bases = _uniform_bases(x - first, [k - nu for nu in orders])
             idx = self._off[g] + first
-            acc = basis[:, :1] * coef[idx]
-            for m in range(1, k + 1 - nu):
-                acc += basis[:, m : m + 1] * coef[idx + m]
-            out[lo : lo + chunk] = acc
-        return out
+            for nu, coef, out in zip(orders, coefs, outs, strict=True):
+                basis = bases[k - nu]
+                acc = basis[:, :1] * coef[idx]
+                for m in range(1, k + 1 - nu):
+                    acc += basis[:, m : m + 1] * coef[idx + m]
+                out[lo : lo + chunk] = acc
+        return outs
 
 
 def arc_length_samples_many(
@@ -426,12 +504,8 @@ def arc_length_samples_many(
     # cumulative Simpson over pairs of sub-intervals, trapezoid for the odd midpoints (per curve)
     even = np.flatnonzero((j % 2 == 0) & (j > 0))
     simpson = h[even] / 3 * (speed[even - 2] + 4 * speed[even - 1] + speed[even])
-    cs = np.cumsum(simpson)
-    ge = gl[even]
-    firsts = np.r_[0, np.cumsum(np.bincount(ge, minlength=len(sel)))[:-1]]
-    cs = cs - np.repeat(cs[firsts] - simpson[firsts], np.bincount(ge, minlength=len(sel)))
     s = np.zeros(len(ud))
-    s[even] = cs
+    s[even] = _segment_cumsum(simpson, np.bincount(gl[even], minlength=len(sel)))
     odd = np.flatnonzero(j % 2 == 1)
     s[odd] = s[odd - 1] + h[odd] / 2 * (speed[odd - 1] + speed[odd])
     length = s[start + n_dense - 1]
@@ -444,12 +518,17 @@ def arc_length_samples_many(
         jc = np.arange(len(arc)) - np.repeat(np.cumsum(n) - n, n)
         cl = closed[ga]
         arc[cl] = jc[cl] * (length / n)[ga[cl]]
-    # u = np.interp(arc, s, ud) within each curve
-    big = float(np.max(s)) + 1.0 if len(s) else 1.0
-    pos = np.searchsorted(s + gl * big, arc + ga * big, side="right") - 1
+    # u = np.interp(arc, s, ud) within each curve (searched curve by curve, as for the curve alone)
+    pos = np.empty(len(arc), np.intp)
+    a_bounds = np.r_[0, np.cumsum(n)].tolist()
+    for j_c, (lo, hi) in enumerate(zip(a_bounds[:-1], a_bounds[1:], strict=True)):
+        s_lo = int(start[j_c])
+        seg = s[s_lo : s_lo + int(n_dense[j_c])]
+        pos[lo:hi] = np.searchsorted(seg, arc[lo:hi], side="right") + (s_lo - 1)
     pos = np.clip(pos, start[ga], start[ga] + n_dense[ga] - 2)
     u = (ud[pos + 1] - ud[pos]) / (s[pos + 1] - s[pos]) * (arc - s[pos]) + ud[pos]  # as np.interp
     at_end = arc >= s[pos + 1]
     u[at_end] = ud[pos + 1][at_end]
     gg = sel[ga]
-    return gg, arc, u, pack(gg, u), pack(gg, u, 1), pack(gg, u, 2), pack(gg, u, 3)
+    r, d1, d2, d3 = pack.derivatives(gg, u, (0, 1, 2, 3))
+    return gg, arc, u, r, d1, d2, d3

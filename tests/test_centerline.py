@@ -1,0 +1,143 @@
+"""Tests for vesselgeom.centerline.trace_centerlines: batching and threads leave every result unchanged.
+
+Independent references used below:
+- Each branch's trace depends only on that branch, the mask and the settings (the contract stated in
+  :func:`vesselgeom.centerline.trace_centerlines`), so the reference for a branch traced in a batch is
+  the same branch traced alone, and results must match bit for bit.
+- Straight tubes of the tree phantom have the analytic length of :func:`vesselgeom.phantoms.straight`
+  (the distance between the end points); traced lengths of the free (terminal) branches are compared
+  with it.
+- Memory is measured with the standard library's :mod:`tracemalloc` (numpy reports its buffers to it).
+"""
+
+from __future__ import annotations
+
+import tracemalloc
+
+import numpy as np
+import pytest
+
+from vesselgeom import centerline, crosssection
+from vesselgeom.centerline import BranchInput, trace_centerlines
+from vesselgeom.crosssection import CrossSection
+from vesselgeom.phantoms import random_rotation, tree_phantom
+from vesselgeom.radius import BoundaryDistance
+from vesselgeom.settings import Settings
+
+FIELDS = ("arc", "points", "radius", "measured", "extension_mm")
+FRAME_FIELDS = ("tangent", "normal", "binormal", "curvature", "torsion")
+
+
+def _tree_inputs(seed: int = 0):
+    """Branches of a depth-3 tree phantom as skeleton-like polylines (1 mm steps, jittered by 0.3 mm)."""
+    ph = tree_phantom(3, spacing=(0.8, 0.9, 1.0), rotation=random_rotation(seed), seed=seed)
+    rng = np.random.default_rng(seed)
+    inputs = []
+    for i, c in enumerate(ph.curves):
+        n = int(np.ceil((c.t1 - c.t0) / 1.0)) + 1
+        pts = c.r(np.linspace(c.t0, c.t1, n)) + rng.uniform(-0.3, 0.3, (n, 3))
+        # the root starts free, the leaves end free; all other ends are at junctions
+        inputs.append(BranchInput(pts, False, i == 0, i > 0 and i not in (1, 4)))
+    section = CrossSection(ph.mask, ph.affine)
+    boundary = BoundaryDistance(ph.mask, ph.affine)
+    voxel = float(np.mean(np.linalg.norm(ph.affine[:3, :3], axis=0)))
+    return ph, inputs, section, boundary, voxel
+
+
+def _assert_same(a, b):
+    assert (a is None) == (b is None)
+    if a is None:
+        return
+    for f in FIELDS:
+        np.testing.assert_array_equal(getattr(a, f), getattr(b, f), err_msg=f)
+    for f in FRAME_FIELDS:
+        np.testing.assert_array_equal(getattr(a.frame, f), getattr(b.frame, f), err_msg=f)
+    assert (a.step_mm, a.scale_mm, a.degree, a.closed) == (b.step_mm, b.scale_mm, b.degree, b.closed)
+
+
+def test_batched_equals_each_branch_alone(monkeypatch):
+    # reference: every branch traced alone; batches of any size give the same bits
+    ph, inputs, section, boundary, voxel = _tree_inputs(1)
+    settings = Settings()
+    inputs = inputs * 3  # the same branches several times, so batches mix them differently
+    alone = [
+        trace_centerlines([b], section=section, boundary=boundary, voxel_mm=voxel, settings=settings)[0]
+        for b in inputs
+    ]
+    for points, branches in ((10**9, 10**9), (60, 10**9), (10**9, 2)):
+        monkeypatch.setattr(centerline, "_BATCH_POINTS", points)
+        monkeypatch.setattr(centerline, "_BATCH_BRANCHES", branches)
+        assert len(centerline._batches(inputs)) > (1 if points < 10**9 or branches < 10**9 else 0)
+        together = trace_centerlines(
+            inputs, section=section, boundary=boundary, voxel_mm=voxel, settings=settings
+        )
+        for a, b in zip(alone, together, strict=True):
+            _assert_same(a, b)
+    # the traces are not degenerate: leaves are straight tubes of the analytic length (phantom truth),
+    # within the extension and smoothing error of a jittered polyline
+    for truth, cl in zip(ph.branches, alone, strict=False):
+        assert cl is not None
+        assert cl.length_mm == pytest.approx(truth.length_mm, rel=0.1)
+
+
+@pytest.mark.parametrize("threads", [1, 2, 3])
+def test_threads_do_not_change_results(monkeypatch, threads):
+    # reference: the single-threaded trace; mask sampling and radius queries split among threads must
+    # give the same bits
+    _ph, inputs, section, boundary, voxel = _tree_inputs(2)
+    settings = Settings()
+    monkeypatch.setattr(crosssection, "_THREADS", 1)
+    ref = trace_centerlines(inputs, section=section, boundary=boundary, voxel_mm=voxel, settings=settings)
+    monkeypatch.setattr(crosssection, "_THREADS", threads)
+    monkeypatch.setattr(crosssection, "_PARALLEL_SAMPLES", 1)
+    got = trace_centerlines(inputs, section=section, boundary=boundary, voxel_mm=voxel, settings=settings)
+    for a, b in zip(ref, got, strict=True):
+        _assert_same(a, b)
+
+
+def _extra_memory(inputs, section, boundary, voxel) -> float:
+    """tracemalloc peak during the trace minus what the results keep, in bytes."""
+    tracemalloc.start()
+    try:
+        out = trace_centerlines(
+            inputs, section=section, boundary=boundary, voxel_mm=voxel, settings=Settings()
+        )
+        kept, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert all(cl is not None for cl in out)
+    return peak - kept
+
+
+def test_temporary_memory_bounded_by_batch(monkeypatch):
+    # tracemalloc (standard library): with a bound on the batch, the temporaries of 32 copies of the
+    # branches are about those of 4 copies; without it they grow with the number traced at once
+    _ph, inputs, section, boundary, voxel = _tree_inputs(3)
+    monkeypatch.setattr(crosssection, "_THREADS", 1)
+
+    def extra(copies: int) -> float:
+        return _extra_memory(inputs * copies, section, boundary, voxel)
+
+    monkeypatch.setattr(centerline, "_BATCH_POINTS", 300)
+    assert extra(32) < 1.3 * extra(4)
+    monkeypatch.setattr(centerline, "_BATCH_POINTS", 10**9)
+    assert extra(32) > 3.0 * extra(4)
+
+
+def test_group_median_matches_numpy():
+    # numpy reference: np.median of each group's non-NaN values, bit for bit (NaN for none)
+    rng = np.random.default_rng(0)
+    for _ in range(50):
+        lens = rng.integers(0, 12, rng.integers(1, 20))
+        vals = rng.normal(size=lens.sum()) * 10 ** rng.uniform(-4, 4, lens.sum())
+        vals[rng.random(len(vals)) < 0.15] = np.nan
+        gid = np.repeat(np.arange(len(lens)), lens)
+        got = centerline._group_median(vals, gid, len(lens))
+        bounds = np.r_[0, np.cumsum(lens)]
+        for i in range(len(lens)):
+            v = vals[bounds[i] : bounds[i + 1]]
+            v = v[~np.isnan(v)]
+            if v.size:
+                assert got[i] == np.median(v)
+            else:
+                assert np.isnan(got[i])
