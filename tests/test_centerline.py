@@ -141,3 +141,26 @@ def test_group_median_matches_numpy():
                 assert got[i] == np.median(v)
             else:
                 assert np.isnan(got[i])
+
+
+@pytest.mark.parametrize(("ring_radius", "traced"), [(1.7, False), (12.0, True)])
+def test_loop_below_the_smoothing_scale_is_not_fitted(ring_radius, traced):
+    # A loop of circumference 2 pi R with R below the smoothing scale (here the 2-voxel floor, since the
+    # tube radius is 1 voxel) is rejected; a ring of R = 12 with the same tube is traced, and its
+    # curvature is the circle's 1 / R (textbook closed form), to 3 %.
+    from vesselgeom.phantoms import ring, tube_phantom
+
+    ph = tube_phantom(ring(ring_radius), 1.0)
+    t = np.linspace(0, 2 * np.pi, max(int(2 * np.pi * ring_radius), 8), endpoint=False)
+    branch = BranchInput(ring(ring_radius).r(t), True, False, False)  # world mm, as the phantom places it
+    (cl,) = trace_centerlines(
+        [branch],
+        section=CrossSection(ph.mask, ph.affine),
+        boundary=BoundaryDistance(ph.mask, ph.affine),
+        voxel_mm=1.0,
+        settings=Settings(),
+    )
+    assert (cl is not None) == traced
+    if traced:
+        k = cl.frame.curvature[cl.measured]
+        assert abs(np.mean(k) * ring_radius - 1.0) < 0.03
