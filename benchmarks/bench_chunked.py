@@ -170,11 +170,12 @@ def main(argv: list[str] | None = None) -> None:
         f"{gen:.0f} s), chunk {args.chunk}, threaded scheduler, budget {args.budget_mb:.0f} MB "
         f"(volume / budget = {volume_mb / args.budget_mb:.1f}).\n",
         "| time (s) | peak RSS (MB) | RSS after imports (MB) | peak - imports (MB) | budget (MB) "
-        "| branches | junctions | halo | stage times (s) |",
-        "|---|---|---|---|---|---|---|---|---|",
+        "| branches | junctions | halo | tracing (ms/branch) | stage times (s) |",
+        "|---|---|---|---|---|---|---|---|---|---|",
         f"| {large['seconds']:.0f} | {large['peak_rss_mb']:.0f} | {large['rss_after_imports_mb']:.0f} "
         f"| {large['peak_rss_mb'] - large['rss_after_imports_mb']:.0f} | {args.budget_mb:.0f} "
         f"| {large['branches']} | {large['junctions']} | {large['chunking']['halo']} "
+        f"| {1000 * large['timings']['trace'] / max(large['branches'], 1):.1f} "
         f"| {json.dumps(large['timings'])} |\n",
         f"Agreement on a {agree['size']}^3 network (chunk {agree['chunk']}): branches in memory / chunked "
         f"{agree['branches']}, junctions {agree['junctions']}, total length relative difference "

@@ -8,27 +8,30 @@ Stages (each a set of Dask tasks unless noted):
    keeping the core's skeleton voxels with their radius;
 3. *stitch* (in the client): one graph from the union of core voxels, split into components;
    radius at every junction from a sub-volume around it (tasks); spur pruning per component;
-4. *trace*: branches in batches, each branch reading only its box plus a margin;
-5. *measure* (in the client): the same rows and tables as :func:`vesselgeom.analyze`.
+4. *trace*: groups of nearby branches of one component, each group read as one box
+   (:mod:`vesselgeom.chunked.tracing`), a few groups per task;
+5. *measure* (in the client, while tracing runs): each task's centrelines go to
+   :class:`~vesselgeom.tabulate.TableBuilder` as the task finishes and are dropped; junction rows once
+   every branch is in; rows put in branch-id order at the end. The same tables as
+   :func:`vesselgeom.analyze`.
 
-The client holds the skeleton voxels, the graph and the tables (in proportion to the skeleton, not the
-volume); each task holds one box.
+The client holds the skeleton voxels (until tracing starts), the graph, the rows built so far and the
+results of at most :data:`~vesselgeom.chunked.scheduling.IN_FLIGHT_PER_WORKER` tasks per worker (in
+proportion to the skeleton and the output, not the volume); each task holds one box at a time.
 """
 
 from __future__ import annotations
 
-import logging
-import os
 import platform
 import time
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from vesselgeom import __version__
-from vesselgeom.centerline import Centerline
+from vesselgeom.chunked.scheduling import PROCESS_OVERHEAD_MB, delayed, executor, shared
 from vesselgeom.chunked.sources import LazyVolume, open_lazy
 from vesselgeom.chunked.stitch import SkeletonVoxels, branch_max_radius, junction_radii, split_components
 from vesselgeom.chunked.thinning import (
@@ -39,7 +42,7 @@ from vesselgeom.chunked.thinning import (
     task_bytes_per_voxel,
     thin_chunk,
 )
-from vesselgeom.chunked.tracing import BranchJob, trace_jobs
+from vesselgeom.chunked.tracing import BranchJob, branch_boxes, group_branches, trace_groups
 from vesselgeom.errors import InputError
 from vesselgeom.graph import prune_spurs
 from vesselgeom.io.affine import orientation, voxel_sizes, voxel_volume
@@ -50,14 +53,9 @@ from vesselgeom.tabulate import TableBuilder
 
 __all__ = ["analyze_chunked", "PROCESS_OVERHEAD_MB", "BRANCHES_PER_TASK"]
 
-#: Resident memory of one idle Dask worker process (interpreter, numpy, scipy, scikit-image, dask),
-#: measured on the development machine; a local cluster's budget is for data beyond this.
-PROCESS_OVERHEAD_MB = 200
-
-#: Branches traced by one task (a task reads one branch's box at a time).
+#: Branches traced by one task, at least (whole groups of nearby branches, each group read as one box;
+#: a group larger than this is a task of its own).
 BRANCHES_PER_TASK = 32
-
-_LOCAL_SCHEDULERS = ("synchronous", "sync", "single-threaded", "threads", "processes")
 _FIRST_PROBE = 16  # voxels, at most; chunk_size // 8 for small chunks
 
 
@@ -123,7 +121,7 @@ def analyze_chunked(
         if settings.min_component_mm3 is not None
         else settings.min_component_voxels
     )
-    with _executor(scheduler, memory_budget_mb) as (compute, info):
+    with executor(scheduler, memory_budget_mb) as (compute, stream, info):
         t = time.perf_counter()
         foreground, depth, probe = _survey(vol, boxes, chunk_size, settings, compute)
         timings["survey"] = time.perf_counter() - t
@@ -137,10 +135,10 @@ def analyze_chunked(
         _check_budget(info, chunk_size, halo, vol)
 
         t = time.perf_counter()
-        vol_d = _shared(vol)
+        vol_d = shared(vol)
         parts = compute(
             [
-                _delayed(thin_chunk)(
+                delayed(thin_chunk)(
                     vol_d, lo, hi, halo=halo, min_voxels=min_voxels, fill_holes=settings.fill_holes
                 )
                 for lo, hi in boxes
@@ -165,18 +163,14 @@ def analyze_chunked(
 
         t = time.perf_counter()
         plan = _plan(comps, voxels, spacing_mm)
-        jobs = [job for _, _, job in plan]
-        voxel_mm = float(np.mean(spacing_mm))
-        batches = [jobs[i : i + BRANCHES_PER_TASK] for i in range(0, len(jobs), BRANCHES_PER_TASK)]
-        traced = compute(
-            [_delayed(trace_jobs)(vol_d, b, voxel_mm=voxel_mm, settings=settings) for b in batches]
-        )
-        lines = [cl for batch in traced for cl in batch]
-        timings["trace"] = time.perf_counter() - t
+        n_skeleton = len(voxels.coords)
+        del voxels  # the plan holds what tracing and the tables need
+        tasks = _trace_tasks(plan, vol.affine, (chunk_size + 2 * halo) ** 3)
+        tables, measure_s = _trace_and_measure(vol, comps, plan, tasks, radii, spacing_mm, settings, stream)
+        timings["trace"] = time.perf_counter() - t - measure_s
+        timings["measure"] = measure_s
+        del plan, tasks
 
-    t = time.perf_counter()
-    tables = _measure(comps, plan, lines, radii, vol.affine, spacing_mm, settings)
-    timings["measure"] = time.perf_counter() - t
     notes = list(vol.warnings)
     branches, points, junctions = tables
     run = {
@@ -205,7 +199,7 @@ def analyze_chunked(
             "largest_depth_voxels": int(depth),
             "survey_probe_voxels": int(probe),
             "chunks": len(boxes),
-            "skeleton_voxels": len(voxels.coords),
+            "skeleton_voxels": n_skeleton,
             "scheduler": info["name"],
             "workers": info["workers"],
             "memory_budget_mb": memory_budget_mb,
@@ -219,83 +213,7 @@ def analyze_chunked(
     return Result(branches, points, junctions, run, None)
 
 
-# --------------------------------------------------------------------------- scheduling
-
-
-def _delayed(func: Callable) -> Callable:
-    import dask
-
-    return dask.delayed(func, pure=True)
-
-
-def _shared(vol: LazyVolume) -> Any:
-    """The volume as one Dask node, so it is shipped to each worker once (not inside every task)."""
-    import dask
-
-    return dask.delayed(vol, name=f"lazy-volume-{vol.sha256[:16] or id(vol)}", traverse=False)
-
-
-@contextmanager
-def _executor(scheduler: Any, budget_mb: float | None) -> Iterator[tuple[Callable, dict]]:
-    """Yield ``compute(list_of_delayed) -> list`` and a description of where tasks run."""
-    try:
-        import dask
-    except ImportError:  # pragma: no cover - depends on the environment
-        raise InputError(
-            "<chunked>: dask is not installed; install the optional extra: pip install 'vesselgeom[chunked]'"
-        ) from None
-    info: dict[str, Any] = {"overhead_mb": 0}
-    if scheduler is None and budget_mb is not None and budget_mb < 2 * PROCESS_OVERHEAD_MB:
-        # a worker process alone would exceed the budget, and distributed would pause it for good:
-        # run the tasks in this process instead (their memory is bounded by the chunk size)
-        scheduler = "synchronous"
-        info["note"] = "budget below one worker process; tasks ran in this process"
-    if isinstance(scheduler, str) and scheduler in _LOCAL_SCHEDULERS:
-        workers = 1 if scheduler in ("synchronous", "sync", "single-threaded") else os.cpu_count() or 1
-        info.update(name=scheduler, workers=workers, limit_mb=budget_mb / workers if budget_mb else None)
-        yield (lambda tasks: list(dask.compute(*tasks, scheduler=scheduler))), info
-        return
-    from distributed import Client, LocalCluster
-
-    cluster = None
-    if scheduler is None:
-        workers = os.cpu_count() or 1
-        limit: Any = "auto"
-        if budget_mb is not None:
-            workers = max(1, min(workers, int(budget_mb // (2 * PROCESS_OVERHEAD_MB))))
-            limit = f"{budget_mb / workers:.0f}MiB"
-        cluster = LocalCluster(
-            n_workers=workers,
-            threads_per_worker=1,
-            processes=True,
-            memory_limit=limit,
-            dashboard_address=None,
-            silence_logs=logging.ERROR,
-        )
-        client = Client(cluster)
-        info.update(
-            name="local-distributed",
-            workers=workers,
-            limit_mb=budget_mb / workers if budget_mb else None,
-            overhead_mb=PROCESS_OVERHEAD_MB,
-        )
-    elif isinstance(scheduler, str):
-        client = Client(scheduler)
-        n = len(client.scheduler_info().get("workers", {}))
-        info.update(name=scheduler, workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
-    elif hasattr(scheduler, "compute") and hasattr(scheduler, "gather"):
-        client = scheduler
-        n = len(client.scheduler_info().get("workers", {}))
-        info.update(name="client", workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
-    else:
-        raise InputError(f"<chunked>: scheduler {scheduler!r} is not a scheduler name, address or Client")
-    try:
-        yield (lambda tasks: list(client.gather(client.compute(tasks)))), info
-    finally:
-        if client is not scheduler:
-            client.close()
-        if cluster is not None:
-            cluster.close()
+# --------------------------------------------------------------------------- budget
 
 
 def _check_budget(info: dict, chunk_size: int, halo: int, vol: LazyVolume) -> None:
@@ -324,13 +242,13 @@ def _survey(
 ) -> tuple[int, int, int]:
     """Total foreground and largest depth; the probe doubles for chunks whose depth reached it."""
     probe = min(_FIRST_PROBE, max(4, chunk_size // 8))
-    vol_d = _shared(vol)
+    vol_d = shared(vol)
     todo = list(range(len(boxes)))
     found: dict[int, Any] = {}
     while True:
         results = compute(
             [
-                _delayed(survey_chunk)(vol_d, *boxes[i], probe=probe, fill_holes=settings.fill_holes)
+                delayed(survey_chunk)(vol_d, *boxes[i], probe=probe, fill_holes=settings.fill_holes)
                 for i in todo
             ]
         )
@@ -380,7 +298,7 @@ def _junction_radii(
     order = sorted(groups)
     results = compute(
         [
-            _delayed(junction_radii)(
+            delayed(junction_radii)(
                 vol_d, positions_a[groups[c]], margins_a[groups[c]], fill_holes=settings.fill_holes
             )
             for c in order
@@ -429,30 +347,80 @@ def _plan(
     return plan
 
 
-def _measure(
+def _trace_tasks(plan: list, affine: np.ndarray, max_box_voxels: float) -> list[list[np.ndarray]]:
+    """Tracing tasks: spatial groups of one component's branches
+    (:func:`~vesselgeom.chunked.tracing.group_branches`), consecutive groups packed until a task holds
+    :data:`BRANCHES_PER_TASK` branches.
+
+    A group's box is at most ``max_box_voxels`` (a thinning task's box, which the budget already admits),
+    unless a single branch needs more. Returns each task's groups as arrays of plan indices.
+    """
+    lo, hi = branch_boxes([job for _, _, job in plan], affine)
+    keys = np.array([ctx.component_id for _, ctx, _ in plan], np.int64)
+    tasks: list[list[np.ndarray]] = []
+    count = BRANCHES_PER_TASK
+    for group in group_branches(lo, hi, max_box_voxels=max_box_voxels, keys=keys):
+        if count >= BRANCHES_PER_TASK:
+            tasks.append([])
+            count = 0
+        tasks[-1].append(group)
+        count += len(group)
+    return tasks
+
+
+def _trace_and_measure(
+    vol: LazyVolume,
     comps: list,
     plan: list,
-    lines: list[Centerline | None],
+    tasks: list[list[np.ndarray]],
     radii: dict[tuple, float],
-    affine: np.ndarray,
     spacing_mm: np.ndarray,
     settings: Settings,
-) -> tuple:
-    """The three tables, row by row as :func:`vesselgeom.pipeline.analyze_volume` builds them."""
+    stream: Callable,
+) -> tuple[tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame], float]:
+    """Trace the branches in tasks and measure each task's branches as its result arrives.
+
+    Rows are built as :func:`vesselgeom.pipeline.analyze_volume` builds them (``TableBuilder``): each
+    task's centrelines are measured and dropped as soon as the task is collected (in whatever order the
+    tasks finish), junctions are added once every branch is in, and the branch and point rows are put
+    in branch-id order at the end. Returns the three tables and the seconds spent measuring.
+    """
     builder = TableBuilder(
         settings=settings, voxel_mm=float(np.mean(spacing_mm)), coarsest_voxel_mm=float(spacing_mm.max())
     )
-    by_branch = {id(b): (ctx, cl) for (b, ctx, _), cl in zip(plan, lines, strict=True)}
+    measure_s = 0.0
+    voxel_mm = float(np.mean(spacing_mm))
+    calls = (([[plan[i][2] for i in group] for group in task],) for task in tasks)
+    for k, traced in stream(trace_groups, vol, calls, voxel_mm=voxel_mm, settings=settings):
+        t = time.perf_counter()
+        order = np.concatenate(tasks[k])
+        lines = [cl for group in traced for cl in group]
+        del traced
+        builder.add_branches(lines, [plan[i][1] for i in order.tolist()])
+        del lines
+        measure_s += time.perf_counter() - t
+    t = time.perf_counter()
+    _add_junctions(builder, comps, plan, radii, vol.affine)
+    branches, points, junctions = builder.tables()
+    del builder
+    branches, points = _in_branch_order(branches, points)
+    return (branches, points, junctions), measure_s + time.perf_counter() - t
+
+
+def _add_junctions(
+    builder: TableBuilder, comps: list, plan: list, radii: dict[tuple, float], affine: np.ndarray
+) -> None:
+    """Junction rows, component by component and node by node, as the in-memory pipeline adds them."""
+    context = {id(b): ctx for b, ctx, _ in plan}
     for comp in comps:
         graph = comp.graph
-        entries = [(b, *by_branch[id(b)]) for b in graph.branches]
-        builder.add_branches([cl for _, _, cl in entries], [ctx for _, ctx, _ in entries])
         ends_at: dict[int, list[tuple[int, bool]]] = {}  # branch ends per node, in branch order
-        for b, ctx, _ in entries:
+        for b in graph.branches:
+            bid = context[id(b)].branch_id
             if b.start is not None:
-                ends_at.setdefault(b.start, []).append((ctx.branch_id, True))
+                ends_at.setdefault(b.start, []).append((bid, True))
             if b.end is not None:
-                ends_at.setdefault(b.end, []).append((ctx.branch_id, False))
+                ends_at.setdefault(b.end, []).append((bid, False))
         for nid in sorted(graph.nodes):
             node = graph.nodes[nid]
             if node.kind != "junction":
@@ -460,4 +428,14 @@ def _measure(
             pos = node.position @ affine[:3, :3].T + affine[:3, 3]
             radius = radii[tuple(node.position.tolist())]
             builder.add_junction(comp.node_ids[nid], comp.component_id, pos, radius, ends_at.get(nid, []))
-    return builder.tables()
+
+
+def _in_branch_order(branches: pd.DataFrame, points: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Branch rows by branch id, point rows by branch id (each branch's points keep their order)."""
+    if not branches.branch_id.is_monotonic_increasing:
+        branches = branches.take(np.argsort(branches.branch_id.to_numpy(), kind="stable"))
+        branches = branches.reset_index(drop=True)
+    if not points.branch_id.is_monotonic_increasing:
+        points = points.take(np.argsort(points.branch_id.to_numpy(), kind="stable"))
+        points = points.reset_index(drop=True)
+    return branches, points
