@@ -355,7 +355,9 @@ def make_table(
     Returns
     -------
     DataFrame, shape (n, len(schema))
-        Columns in schema order, each cast to its dtype, with a default ``RangeIndex``.
+        Columns in schema order, each cast to its dtype, with a default ``RangeIndex``. Numeric numpy
+        arrays already of the column's type are used as they are, not copied (memory on large point
+        tables): do not modify them afterwards.
 
     Raises
     ------
@@ -525,8 +527,10 @@ def _build(schema: tuple[Column, ...], data: Any, *, source: str) -> pd.DataFram
         lengths[name] = len(values)
     if len(set(lengths.values())) > 1:
         raise InputError(f"{source}: columns differ in length {lengths}; give each column n values")
-    cast = {c.name: _cast(c, columns[c.name], source) for c in schema}
-    return pd.DataFrame(cast)
+    cast = {}
+    for c in schema:
+        cast[c.name] = _cast(c, columns[c.name], source)
+    return pd.DataFrame(cast, copy=False)
 
 
 _KINDS = {
@@ -541,6 +545,14 @@ _KINDS = {
 def _cast(column: Column, values: Any, source: str) -> Any:
     if isinstance(values, pd.Series | pd.Index):
         values = values.array
+    if isinstance(values, np.ndarray) and values.ndim == 1:
+        # plain numeric arrays need no inference and no nullable round trip (memory: no copies)
+        if column.dtype == "float64" and values.dtype.kind in "fiu":
+            return values.astype(np.float64, copy=False)
+        if column.dtype == "int64" and values.dtype.kind in "iu":
+            return values.astype(np.int64, copy=False)
+        if column.dtype == "bool" and values.dtype.kind == "b":
+            return values
     kind = infer_dtype(values, skipna=True)
     where = f"{source}: column {column.name!r} ({column.dtype})"
     if kind not in _KINDS[column.dtype]:

@@ -75,19 +75,21 @@ class TableBuilder:
         self._junctions.append(junction_row(node_id, component_id, position_mm, radius_mm, dirs))
 
     def tables(self) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
-        """(branches, points, junctions), typed by their schemas (header-only when empty)."""
+        """(branches, points, junctions), typed by their schemas (header-only when empty).
+
+        Call once: the collected point columns are handed over to the table (not copied twice).
+        """
         branches = _merge_lists(self._branches, BRANCH_COLUMNS)
         points = _merge_arrays(self._points, POINT_COLUMNS)
+        self._points = []
         junctions = (
             {c.name: [r[c.name] for r in self._junctions] for c in JUNCTION_COLUMNS}
             if self._junctions
             else None
         )
-        return (
-            make_table(BRANCH_COLUMNS, branches),
-            make_table(POINT_COLUMNS, points),
-            make_table(JUNCTION_COLUMNS, junctions),
-        )
+        point_table = make_table(POINT_COLUMNS, points)
+        del points
+        return make_table(BRANCH_COLUMNS, branches), point_table, make_table(JUNCTION_COLUMNS, junctions)
 
 
 def _merge_lists(parts: list[dict[str, list]], schema) -> dict[str, list] | None:
@@ -97,7 +99,11 @@ def _merge_lists(parts: list[dict[str, list]], schema) -> dict[str, list] | None
 
 
 def _merge_arrays(parts: list[dict[str, np.ndarray]], schema) -> dict[str, np.ndarray] | None:
+    """Concatenate the parts column by column, emptying them as it goes (one column's copy at a time)."""
     parts = [p for p in parts if len(p["arc_mm"])]
     if not parts:
         return None
-    return {c.name: np.concatenate([p[c.name] for p in parts]) for c in schema}
+    out = {}
+    for c in schema:
+        out[c.name] = np.concatenate([p.pop(c.name) for p in parts])
+    return out
