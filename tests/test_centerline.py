@@ -143,16 +143,22 @@ def test_group_median_matches_numpy():
                 assert np.isnan(got[i])
 
 
+@pytest.mark.parametrize("at_junction", [False, True])
 @pytest.mark.parametrize(("ring_radius", "traced"), [(1.7, False), (12.0, True)])
-def test_loop_below_the_smoothing_scale_is_not_fitted(ring_radius, traced):
+def test_loop_below_the_smoothing_scale_is_not_fitted(ring_radius, traced, at_junction):
     # A loop of circumference 2 pi R with R below the smoothing scale (here the 2-voxel floor, since the
-    # tube radius is 1 voxel) is rejected; a ring of R = 12 with the same tube is traced, and its
-    # curvature is the circle's 1 / R (textbook closed form), to 3 %.
+    # tube radius is 1 voxel) is rejected, whether closed or an open path that leaves and re-enters one
+    # junction; a ring of R = 12 with the same tube is traced, and its curvature is the circle's 1 / R
+    # (textbook closed form), to 3 %.
     from vesselgeom.phantoms import ring, tube_phantom
 
     ph = tube_phantom(ring(ring_radius), 1.0)
     t = np.linspace(0, 2 * np.pi, max(int(2 * np.pi * ring_radius), 8), endpoint=False)
-    branch = BranchInput(ring(ring_radius).r(t), True, False, False)  # world mm, as the phantom places it
+    path = ring(ring_radius).r(t)  # world mm, as the phantom places it
+    if at_junction:  # from the junction round and back to it, both ends at the junction (not free)
+        branch = BranchInput(np.vstack([path, path[:1]]), False, False, False)
+    else:
+        branch = BranchInput(path, True, False, False)
     (cl,) = trace_centerlines(
         [branch],
         section=CrossSection(ph.mask, ph.affine),

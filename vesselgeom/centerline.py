@@ -115,7 +115,7 @@ def _unit(v: np.ndarray) -> np.ndarray:
 
 
 def _loop_length(path: np.ndarray) -> float:
-    """Length (mm) of a closed polyline, its closing segment included."""
+    """Length (mm) of a closed polyline, its closing segment included (zero if it ends where it starts)."""
     return float(np.linalg.norm(np.diff(path, axis=0, append=path[:1]), axis=1).sum())
 
 
@@ -380,11 +380,13 @@ def _trace_batch(
     smoothing = settings.smoothing_radii * scales
     paths, targets = _cut_near_junctions(branches, r_all, scales, settings)
     fits = fit_curves(paths, smoothing_mm=smoothing, closed=closed)
-    # A loop shorter than 2 pi scales bends tighter than the smoothing scale (and than a tube of its
-    # radius can); its fit collapses into cusps (curvature up to 1e14 /mm seen on 3-5 mm skeleton loops
-    # of 1-voxel vessels), so it is not fitted and is reported as fit_failed.
+    # A loop (closed, or leaving and re-entering the same junction) shorter than 2 pi scales bends
+    # tighter than the smoothing scale (and than a tube of its radius can): its fit collapses into cusps
+    # (curvature up to 1e14 /mm seen on 3-5 mm skeleton loops of 1-voxel vessels), so it is not fitted
+    # and is reported as fit_failed.
     for i, b in enumerate(branches):
-        if b.closed and fits[i] is not None and _loop_length(b.path) < 2 * np.pi * scales[i]:
+        loop = b.closed or (len(b.path) > 1 and np.array_equal(b.path[0], b.path[-1]))
+        if loop and fits[i] is not None and _loop_length(b.path) < 2 * np.pi * scales[i]:
             fits[i] = None
 
     for _ in range(settings.recentre_passes):
