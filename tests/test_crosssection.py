@@ -94,28 +94,3 @@ def test_centroids_independent_of_chunks_and_threads(monkeypatch):
         got_c, got_a = section.centroids(centres, tangents, radii, chunk=chunk)
         np.testing.assert_array_equal(got_c, ref_c)
         np.testing.assert_array_equal(got_a, ref_a)
-
-
-def test_spaced_centroids(monkeypatch):
-    # reference 1: a spacing fine enough for the full grid on every disc gives exactly centroids();
-    # reference 2 (elementary geometry): with coarser sampling of small discs, sections of a cylinder
-    # are centred on its axis as closely as with the full grid (0.01 mm), with area pi R^2 (5 %)
-    mask, aff, centre, axis = _cylinder(2.5, rotation_seed=4)
-    rng = np.random.default_rng(4)
-    n = 60
-    along = centre + np.outer(rng.uniform(-8, 8, n), axis)
-    e1, e2 = normal_basis(np.tile(axis, (n, 1)))
-    off = rng.uniform(-0.8, 0.8, (n, 1)) * e1 + rng.uniform(-0.8, 0.8, (n, 1)) * e2
-    tangents = np.tile(axis, (n, 1))
-    radii = rng.uniform(3.5, 6.0, n)
-    section = CrossSection(mask, aff)
-    full = section.centroids(along + off, tangents, radii)
-    same = section.centroids_spaced(along + off, tangents, radii, spacing_mm=radii.min() / 8)
-    np.testing.assert_array_equal(same[0], full[0])
-    np.testing.assert_array_equal(same[1], full[1])
-    err_full = np.linalg.norm(full[0] - along, axis=1).max()
-    assert err_full < 0.25  # a quarter voxel (discs up to 2.4 R: partial voxels at the surface)
-    moved, area_r = section.centroids_spaced(along + off, tangents, radii, spacing_mm=0.9)
-    assert not np.array_equal(moved, full[0])  # fewer samples: (slightly) different results
-    assert np.linalg.norm(moved - along, axis=1).max() < err_full + 0.01
-    np.testing.assert_allclose(area_r, 2.5, rtol=0.05)

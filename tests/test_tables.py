@@ -379,3 +379,23 @@ def test_columns_document_is_json_and_complete():
     assert "empty field" in conventions["missing"].lower()
     with pytest.raises(InputError):
         columns_document({"bad.csv": ("not a column",)})
+
+
+def test_make_table_owns_its_data_unless_told_not_to():
+    # numpy's np.shares_memory is the reference for whether two arrays share a buffer
+    from vesselgeom.tables import POINT_COLUMNS
+
+    cols = {c.name: np.zeros(4, bool if c.dtype == "bool" else c.dtype) for c in POINT_COLUMNS}
+    owned = make_table(POINT_COLUMNS, cols)
+    shared = make_table(POINT_COLUMNS, cols, copy=False)
+    assert not np.shares_memory(owned["x_mm"].to_numpy(), cols["x_mm"])
+    assert np.shares_memory(shared["x_mm"].to_numpy(), cols["x_mm"])
+
+
+def test_unsigned_values_beyond_int64_are_refused():
+    from vesselgeom.tables import POINT_COLUMNS
+
+    cols = {c.name: np.zeros(2, bool if c.dtype == "bool" else c.dtype) for c in POINT_COLUMNS}
+    cols["branch_id"] = np.array([2**63 + 5, 1], np.uint64)  # does not fit int64 (numpy iinfo)
+    with pytest.raises(InputError):
+        make_table(POINT_COLUMNS, cols)

@@ -23,9 +23,6 @@ __all__ = ["Centerline", "BranchInput", "trace_centerlines"]
 # bounds on one batch of trace_centerlines: its temporaries grow with the points traced at once
 _BATCH_POINTS = 8_000
 _BATCH_BRANCHES = 1000
-# None: recentring discs sampled on the full grid (CrossSection.centroids). A number: samples at most this
-# many voxels apart (CrossSection.centroids_spaced), fewer on small discs; changes results slightly.
-_DISC_SPACING_VOXELS: float | None = None
 
 
 @dataclass(frozen=True)
@@ -398,12 +395,7 @@ def _trace_batch(
         tangents = _unit(d1)
         rad = boundary(centres)
         disc = 1.5 * np.maximum(rad, voxel_mm) + voxel_mm
-        if _DISC_SPACING_VOXELS is None:
-            moved, _ = section.centroids(centres, tangents, disc)
-        else:
-            moved, _ = section.centroids_spaced(
-                centres, tangents, disc, spacing_mm=_DISC_SPACING_VOXELS * voxel_mm
-            )
+        moved, _ = section.centroids(centres, tangents, disc)
         refits = _fit_packed(moved, np.bincount(g, minlength=nb), smoothing, closed)
         fits = [
             new if (old is not None and new is not None) else old

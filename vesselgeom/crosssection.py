@@ -82,7 +82,6 @@ class CrossSection:
         self._data = m.view(np.uint8) if m.dtype == bool else (m != 0).astype(np.uint8)
         self._affine = np.asarray(affine, float)
         self._inv = np.linalg.inv(self._affine)
-        self._side = samples_per_side
         self._grid, self._cell = _disc_grid(samples_per_side)
 
     def sample(self, points_mm: np.ndarray) -> np.ndarray:
@@ -139,50 +138,6 @@ class CrossSection:
         return self._centroids_on_grid(
             np.asarray(centres, float), tangents, np.asarray(disc_radii, float), self._grid, self._cell, chunk
         )
-
-    def centroids_spaced(
-        self,
-        centres: np.ndarray,
-        tangents: np.ndarray,
-        disc_radii: np.ndarray,
-        *,
-        spacing_mm: float,
-        chunk: int = 1024,
-    ) -> tuple[np.ndarray, np.ndarray]:
-        """:meth:`centroids` with about the same sample spacing on every disc: fewer samples on small discs.
-
-        Each disc gets the odd number of samples per side, at most ``samples_per_side``, that keeps the
-        spacing between samples at or below ``spacing_mm``: discs of radius up to
-        ``(samples_per_side - 1) / 2 * spacing_mm`` are sampled more coarsely than by :meth:`centroids`
-        (the results differ slightly), larger ones exactly as by :meth:`centroids`.
-
-        Parameters
-        ----------
-        centres, tangents, disc_radii, chunk
-            As :meth:`centroids`.
-        spacing_mm : float, mm
-            Largest spacing between disc samples.
-
-        Returns
-        -------
-        centroids : (n, 3) float array, mm
-        area_radius : (n,) float array, mm
-            As :meth:`centroids`.
-        """
-        centres = np.asarray(centres, float)
-        tangents = np.asarray(tangents, float)
-        radii = np.asarray(disc_radii, float)
-        side = np.minimum(2 * np.ceil(radii / spacing_mm) + 1, self._side).astype(int)
-        side = np.where(np.isfinite(radii), np.maximum(side, 3), self._side)
-        out = centres.copy()
-        area_r = np.zeros(len(centres))
-        for n_side in np.unique(side).tolist():
-            sel = np.flatnonzero(side == n_side)
-            grid, cell = (self._grid, self._cell) if n_side == self._side else _disc_grid(n_side)
-            out[sel], area_r[sel] = self._centroids_on_grid(
-                centres[sel], tangents[sel], radii[sel], grid, cell, chunk
-            )
-        return out, area_r
 
     def _centroids_on_grid(
         self,

@@ -207,6 +207,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         timings["thin"] += time.perf_counter() - t
         if skel.sum() < 2:
             notes.append(f"component {comp.component_id} thinned to a single voxel; no branch measured")
+            del skel, comp
             t = time.perf_counter()
             continue
 
@@ -274,6 +275,8 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             radii = boundary(pos)
             for nid, p, r in zip(junctions, pos, radii, strict=True):
                 builder.add_junction(node_ids[nid], comp.component_id, p, float(r), ends_at.get(nid, []))
+        # nothing of this component (its crop, sampler, k-d tree, graph) outlives its pass
+        del comp, section, boundary, graph, inputs, contexts, ends_at
         timings["measure"] += time.perf_counter() - t
         t = time.perf_counter()
 

@@ -25,18 +25,13 @@ _SLAB_PLANES = 16  # planes of the mask marked at once when finding its outer bo
 _PARALLEL_POINTS = 1000  # queries of fewer points are not worth starting threads
 
 
-def _outer_boundary(mask: np.ndarray) -> np.ndarray:
-    """Index coordinates (k, 3), in raster order, of background voxels 6-adjacent to the foreground.
-
-    Equal to ``np.argwhere(binary_dilation(mask, 6-connected) & ~mask)``; with a background border on
-    every side it is computed from the foreground's flat indices (cost follows the foreground, not the
-    array: no dilation of the whole array), slab by slab (:func:`_outer_boundary_slabs`).
-    """
-    return np.concatenate(list(_outer_boundary_slabs(mask)))
-
-
 def _outer_boundary_slabs(mask: np.ndarray, *, planes: int = _SLAB_PLANES) -> Iterator[np.ndarray]:
-    """:func:`_outer_boundary` in pieces: the boundary voxels of ``planes`` planes (axis 0) at a time.
+    """Outer boundary voxels in pieces: those of ``planes`` planes (axis 0) at a time.
+
+    The outer boundary: index coordinates (k, 3), in raster order, of background voxels 6-adjacent to
+    the foreground, equal to ``np.argwhere(binary_dilation(mask, 6-connected) & ~mask)``; with a
+    background border on every side it is computed from the foreground's flat indices (cost follows the
+    foreground, not the array: no dilation of the whole array).
 
     Each slab is marked with one plane of its neighbours on either side, so the work arrays are the
     size of a slab, not of the whole array; concatenated, the pieces are the whole result in order.

@@ -338,7 +338,10 @@ _CONVENTIONS: dict[str, str] = {
 
 
 def make_table(
-    schema: tuple[Column, ...], data: Mapping[str, Any] | pd.DataFrame | None = None
+    schema: tuple[Column, ...],
+    data: Mapping[str, Any] | pd.DataFrame | None = None,
+    *,
+    copy: bool = True,
 ) -> pd.DataFrame:
     """Build a typed table with exactly the columns of ``schema``, in order.
 
@@ -351,13 +354,15 @@ def make_table(
         order (a pandas index is ignored). ``None`` or an empty mapping gives a zero-row table.
         Float columns accept ``None``/NaN/``pd.NA`` as missing, and so do ``"Int64"`` columns;
         ``"int64"``, ``"bool"`` and ``"string"`` columns do not (use ``""`` for an empty text).
+    copy : bool
+        False: numeric numpy arrays already of a column's type become the table's columns without a
+        copy, so the table and the caller's arrays share memory (for large point tables whose arrays
+        the caller hands over). Default True: the table owns its data.
 
     Returns
     -------
     DataFrame, shape (n, len(schema))
-        Columns in schema order, each cast to its dtype, with a default ``RangeIndex``. Numeric numpy
-        arrays already of the column's type are used as they are, not copied (memory on large point
-        tables): do not modify them afterwards.
+        Columns in schema order, each cast to its dtype, with a default ``RangeIndex``.
 
     Raises
     ------
@@ -370,7 +375,7 @@ def make_table(
     >>> make_table(JUNCTION_COLUMNS).shape
     (0, 11)
     """
-    return _build(schema, data, source=_ARRAY)
+    return _build(schema, data, source=_ARRAY, share=not copy)
 
 
 def write_csv(
@@ -499,7 +504,7 @@ def _check_names(schema: tuple[Column, ...], names: list[str], source: str) -> N
         raise InputError(f"{source}: {' and '.join(problems)}; give exactly the schema's columns")
 
 
-def _build(schema: tuple[Column, ...], data: Any, *, source: str) -> pd.DataFrame:
+def _build(schema: tuple[Column, ...], data: Any, *, source: str, share: bool = False) -> pd.DataFrame:
     _check_schema(schema, source)
     if data is None:
         data = {}
@@ -529,7 +534,7 @@ def _build(schema: tuple[Column, ...], data: Any, *, source: str) -> pd.DataFram
         raise InputError(f"{source}: columns differ in length {lengths}; give each column n values")
     cast = {}
     for c in schema:
-        cast[c.name] = _cast(c, columns[c.name], source)
+        cast[c.name] = _cast(c, columns[c.name], source, share=share)
     return pd.DataFrame(cast, copy=False)
 
 
@@ -542,17 +547,19 @@ _KINDS = {
 }
 
 
-def _cast(column: Column, values: Any, source: str) -> Any:
+def _cast(column: Column, values: Any, source: str, *, share: bool = False) -> Any:
     if isinstance(values, pd.Series | pd.Index):
         values = values.array
     if isinstance(values, np.ndarray) and values.ndim == 1:
-        # plain numeric arrays need no inference and no nullable round trip (memory: no copies)
-        if column.dtype == "float64" and values.dtype.kind in "fiu":
-            return values.astype(np.float64, copy=False)
-        if column.dtype == "int64" and values.dtype.kind in "iu":
-            return values.astype(np.int64, copy=False)
-        if column.dtype == "bool" and values.dtype.kind == "b":
-            return values
+        # plain numeric arrays need no inference and no nullable round trip (at most one copy)
+        kind = values.dtype.kind
+        fits = kind != "u" or not len(values) or int(values.max()) <= np.iinfo(np.int64).max
+        if column.dtype == "float64" and kind in "fiu":
+            return values.astype(np.float64, copy=not share)
+        if column.dtype == "int64" and kind in "iu" and fits:
+            return values.astype(np.int64, copy=not share)
+        if column.dtype == "bool" and kind == "b":
+            return values if share else values.copy()
     kind = infer_dtype(values, skipna=True)
     where = f"{source}: column {column.name!r} ({column.dtype})"
     if kind not in _KINDS[column.dtype]:

@@ -87,7 +87,7 @@ class TableBuilder:
             if self._junctions
             else None
         )
-        point_table = make_table(POINT_COLUMNS, points)
+        point_table = make_table(POINT_COLUMNS, points, copy=False)  # the merged columns are handed over
         del points
         return make_table(BRANCH_COLUMNS, branches), point_table, make_table(JUNCTION_COLUMNS, junctions)
 
