@@ -49,6 +49,15 @@ def normal_basis(tangents: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return e1, e2
 
 
+def _rows_times(points: np.ndarray, lin: np.ndarray) -> np.ndarray:
+    """``points @ lin.T`` for (n, 3) rows, each row's result independent of the other rows.
+
+    A BLAS matrix product may round a row differently depending on where it sits in the block, which
+    would make a point's result depend on which other points share its batch.
+    """
+    return points[:, :1] * lin[:, 0] + points[:, 1:2] * lin[:, 1] + points[:, 2:3] * lin[:, 2]
+
+
 def _disc_grid(samples_per_side: int) -> tuple[np.ndarray, np.float64]:
     """Square grid of ``samples_per_side`` points per side on [-1, 1]^2, kept within the unit disc.
 
@@ -87,7 +96,7 @@ class CrossSection:
     def sample(self, points_mm: np.ndarray) -> np.ndarray:
         """Trilinear mask values (0..1) at (..., 3) world points; 0 outside the array."""
         pts = np.asarray(points_mm, float)
-        ijk = pts.reshape(-1, 3) @ self._inv[:3, :3].T + self._inv[:3, 3]
+        ijk = _rows_times(pts.reshape(-1, 3), self._inv[:3, :3]) + self._inv[:3, 3]
         out = np.empty(len(ijk), np.float32)
         parts = _THREADS if len(ijk) >= _PARALLEL_SAMPLES else 1
         bounds = np.linspace(0, len(ijk), parts + 1).astype(int).tolist()
@@ -153,8 +162,8 @@ class CrossSection:
         area_r = np.zeros(len(centres))
         e1, e2 = normal_basis(tangents)
         lin = self._inv[:3, :3]
-        c_ijk = centres @ lin.T + self._inv[:3, 3]
-        e1_ijk, e2_ijk = e1 @ lin.T, e2 @ lin.T
+        c_ijk = _rows_times(centres, lin) + self._inv[:3, 3]
+        e1_ijk, e2_ijk = _rows_times(e1, lin), _rows_times(e2, lin)
         ga, gb = grid[:, 0], grid[:, 1]
         n = len(centres)
         threads = _THREADS if n * len(ga) >= _PARALLEL_SAMPLES else 1
@@ -184,7 +193,8 @@ class CrossSection:
                 ndimage.map_coordinates(self._data, ijk, order=1, mode="constant", cval=0.0, output=w)
                 wsum = w.sum(axis=1)  # float32, as the mask values
                 np.copyto(tmp, w)  # the float64 copy that w @ ga would make
-                sa, sb = tmp @ ga, tmp @ gb
+                # row by row (a BLAS product's rounding can depend on a row's place in the block)
+                sa, sb = np.einsum("ij,j->i", tmp, ga), np.einsum("ij,j->i", tmp, gb)
                 safe = np.where(wsum > 0, wsum, 1.0)
                 r = rho[:, 0]
                 shift = r[:, None] * (sa[:, None] * e1[sl] + sb[:, None] * e2[sl]) / safe[:, None]
