@@ -39,3 +39,43 @@ def test_batches_give_the_same_tables(masks, name, batch, monkeypatch):
         pd.testing.assert_frame_equal(a, b, check_exact=True)
     angles = whole.junctions["min_angle_deg"].to_numpy()
     assert np.all(np.isfinite(angles))  # every junction's branches were found across batches
+
+
+def test_batches_added_out_of_order_come_back_in_branch_order(masks):
+    # reference: the same centrelines added in branch order; by_branch_id restores that order exactly
+    from vesselgeom.centerline import BranchInput, trace_centerlines
+    from vesselgeom.crosssection import CrossSection
+    from vesselgeom.graph import build_graph
+    from vesselgeom.measure import BranchContext
+    from vesselgeom.radius import BoundaryDistance
+    from vesselgeom.settings import Settings
+    from vesselgeom.skeleton import iter_components, thin
+    from vesselgeom.tabulate import TableBuilder
+
+    mask, affine = masks["network"]
+    settings = Settings()
+    comp = max(iter_components(mask, min_voxels=27), key=lambda c: c.mask.sum())
+    aff = affine.copy()
+    aff[:3, 3] = affine[:3, :3] @ comp.offset + affine[:3, 3]
+    graph = build_graph(thin(comp.mask))
+    inputs = [
+        BranchInput(b.path @ aff[:3, :3].T + aff[:3, 3], b.closed, False, False) for b in graph.branches
+    ]
+    contexts = [BranchContext(i + 1, 1, "internal", None, None) for i in range(len(inputs))]
+    lines = trace_centerlines(
+        inputs,
+        section=CrossSection(comp.mask, aff),
+        boundary=BoundaryDistance(comp.mask, aff),
+        voxel_mm=1.0,
+        settings=settings,
+    )
+    assert len(lines) >= 4
+    kw = dict(settings=settings, voxel_mm=1.0, coarsest_voxel_mm=1.0)
+    ordered, shuffled = TableBuilder(**kw), TableBuilder(**kw)
+    for lo in range(0, len(lines), 2):
+        ordered.add_branches(lines[lo : lo + 2], contexts[lo : lo + 2])
+    for lo in reversed(range(0, len(lines), 2)):
+        shuffled.add_branches(lines[lo : lo + 2], contexts[lo : lo + 2])
+    a, b = ordered.tables(), shuffled.tables(by_branch_id=True)
+    for x, y in zip(a, b, strict=True):
+        pd.testing.assert_frame_equal(x, y, check_exact=True)

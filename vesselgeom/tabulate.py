@@ -74,19 +74,21 @@ class TableBuilder:
             dirs.append((bid, None if d is None else d[0 if at_start else 1]))
         self._junctions.append(junction_row(node_id, component_id, position_mm, radius_mm, dirs))
 
-    def tables(self) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    def tables(self, *, by_branch_id: bool = False) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
         """(branches, points, junctions), typed by their schemas (header-only when empty).
 
-        Call once: the collected point columns are handed over to the table (not copied twice).
+        ``by_branch_id``: order branch rows, and point rows, by branch id (each branch's points keep
+        their order) when batches were added out of order (chunked tracing). Call once: the collected
+        point columns are handed over to the table, one column at a time.
         """
         branches = _merge_lists(self._branches, BRANCH_COLUMNS)
-        points = _merge_arrays(self._points, POINT_COLUMNS)
+        if by_branch_id and branches is not None:
+            perm = np.argsort(np.asarray(branches["branch_id"]), kind="stable").tolist()
+            branches = {k: [v[i] for i in perm] for k, v in branches.items()}
+        points = _merge_arrays(self._points, POINT_COLUMNS, by_branch_id=by_branch_id)
         self._points = []
-        junctions = (
-            {c.name: [r[c.name] for r in self._junctions] for c in JUNCTION_COLUMNS}
-            if self._junctions
-            else None
-        )
+        rows = self._junctions
+        junctions = {c.name: [r[c.name] for r in rows] for c in JUNCTION_COLUMNS} if rows else None
         point_table = make_table(POINT_COLUMNS, points, copy=False)  # the merged columns are handed over
         del points
         return make_table(BRANCH_COLUMNS, branches), point_table, make_table(JUNCTION_COLUMNS, junctions)
@@ -98,12 +100,25 @@ def _merge_lists(parts: list[dict[str, list]], schema) -> dict[str, list] | None
     return {c.name: [v for p in parts for v in p[c.name]] for c in schema}
 
 
-def _merge_arrays(parts: list[dict[str, np.ndarray]], schema) -> dict[str, np.ndarray] | None:
-    """Concatenate the parts column by column, emptying them as it goes (one column's copy at a time)."""
+def _merge_arrays(
+    parts: list[dict[str, np.ndarray]], schema, *, by_branch_id: bool = False
+) -> dict[str, np.ndarray] | None:
+    """Concatenate the parts column by column, emptying them as it goes (one column's copy at a time).
+
+    ``by_branch_id``: rows reordered by the ``branch_id`` column (stable), column by column.
+    """
     parts = [p for p in parts if len(p["arc_mm"])]
     if not parts:
         return None
+    perm = None
+    if by_branch_id:
+        ids = np.concatenate([p["branch_id"] for p in parts])
+        if np.any(ids[1:] < ids[:-1]):
+            perm = np.argsort(ids, kind="stable")
+        del ids
     out = {}
     for c in schema:
-        out[c.name] = np.concatenate([p.pop(c.name) for p in parts])
+        col = np.concatenate([p.pop(c.name) for p in parts])
+        out[c.name] = col if perm is None else col[perm]
+        del col
     return out

@@ -405,10 +405,9 @@ def _trace_and_measure(
         measure_s += time.perf_counter() - t
     t = time.perf_counter()
     _add_junctions(builder, comps, plan, radii, vol.affine)
-    branches, points, junctions = builder.tables()
+    tables = builder.tables(by_branch_id=True)  # tasks finish in spatial order, not branch order
     del builder
-    branches, points = _in_branch_order(branches, points)
-    return (branches, points, junctions), measure_s + time.perf_counter() - t
+    return tables, measure_s + time.perf_counter() - t
 
 
 def _add_junctions(
@@ -432,17 +431,6 @@ def _add_junctions(
             pos = node.position @ affine[:3, :3].T + affine[:3, 3]
             radius = radii[tuple(node.position.tolist())]
             builder.add_junction(comp.node_ids[nid], comp.component_id, pos, radius, ends_at.get(nid, []))
-
-
-def _in_branch_order(branches: pd.DataFrame, points: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Branch rows by branch id, point rows by branch id (each branch's points keep their order)."""
-    if not branches.branch_id.is_monotonic_increasing:
-        branches = branches.take(np.argsort(branches.branch_id.to_numpy(), kind="stable"))
-        branches = branches.reset_index(drop=True)
-    if not points.branch_id.is_monotonic_increasing:
-        points = points.take(np.argsort(points.branch_id.to_numpy(), kind="stable"))
-        points = points.reset_index(drop=True)
-    return branches, points
 
 
 def _return_freed_memory() -> None:
