@@ -18,7 +18,7 @@ import logging
 import os
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
 from typing import Any
 
 from vesselgeom.chunked.sources import LazyVolume
@@ -93,49 +93,45 @@ def executor(scheduler: Any, budget_mb: float | None) -> Iterator[tuple[Callable
         return
     from distributed import Client, LocalCluster
 
-    cluster = None
-    if scheduler is None:
-        workers = os.cpu_count() or 1
-        limit: Any = "auto"
-        if budget_mb is not None:
-            workers = max(1, min(workers, int(budget_mb // (2 * PROCESS_OVERHEAD_MB))))
-            limit = f"{budget_mb / workers:.0f}MiB"
-        cluster = LocalCluster(
-            n_workers=workers,
-            threads_per_worker=1,
-            processes=True,
-            memory_limit=limit,
-            dashboard_address=None,
-            silence_logs=logging.ERROR,
-        )
-        client = Client(cluster)
-        info.update(
-            name="local-distributed",
-            workers=workers,
-            limit_mb=budget_mb / workers if budget_mb else None,
-            overhead_mb=PROCESS_OVERHEAD_MB,
-        )
-    elif isinstance(scheduler, str):
-        client = Client(scheduler)
-        n = len(client.scheduler_info().get("workers", {}))
-        info.update(name=scheduler, workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
-    elif hasattr(scheduler, "compute") and hasattr(scheduler, "gather"):
-        client = scheduler
-        n = len(client.scheduler_info().get("workers", {}))
-        info.update(name="client", workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
-    else:
-        raise InputError(f"<chunked>: scheduler {scheduler!r} is not a scheduler name, address or Client")
+    with ExitStack() as stack:  # whatever is opened here is closed, also when a later step raises
+        if scheduler is None:
+            workers = os.cpu_count() or 1
+            limit: Any = "auto"
+            if budget_mb is not None:
+                workers = max(1, min(workers, int(budget_mb // (2 * PROCESS_OVERHEAD_MB))))
+                limit = f"{budget_mb / workers:.0f}MiB"
+            cluster = stack.enter_context(
+                LocalCluster(
+                    n_workers=workers,
+                    threads_per_worker=1,
+                    processes=True,
+                    memory_limit=limit,
+                    dashboard_address=None,
+                    silence_logs=logging.ERROR,
+                )
+            )
+            client = stack.enter_context(Client(cluster))
+            info.update(
+                name="local-distributed",
+                workers=workers,
+                limit_mb=budget_mb / workers if budget_mb else None,
+                overhead_mb=PROCESS_OVERHEAD_MB,
+            )
+        elif isinstance(scheduler, str):
+            client = stack.enter_context(Client(scheduler))
+            n = len(client.scheduler_info().get("workers", {}))
+            info.update(name=scheduler, workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
+        elif hasattr(scheduler, "compute") and hasattr(scheduler, "gather"):
+            client = scheduler  # the caller's: not closed here
+            n = len(client.scheduler_info().get("workers", {}))
+            info.update(name="client", workers=n, limit_mb=budget_mb / n if budget_mb and n else None)
+        else:
+            raise InputError(f"<chunked>: scheduler {scheduler!r} is not a scheduler name, address or Client")
 
-    def stream_client(func: Callable, vol: LazyVolume, calls: Iterable[tuple], **kwargs: Any):
-        return _stream_client(client, func, vol, calls, kwargs, max(1, info["workers"]))
+        def stream_client(func: Callable, vol: LazyVolume, calls: Iterable[tuple], **kwargs: Any):
+            return _stream_client(client, func, vol, calls, kwargs, max(1, info["workers"]))
 
-    try:
         yield (lambda tasks: list(client.gather(client.compute(tasks)))), stream_client, info
-    finally:
-        if client is not scheduler:
-            client.close()
-        if cluster is not None:
-            cluster.close()
 
 
 def _stream_threads(
