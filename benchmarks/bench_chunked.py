@@ -145,6 +145,9 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--agree", type=int, default=256)
     ap.add_argument("--zarr", type=Path, default=Path("/tmp/vesselgeom_bench_network.zarr"))
     ap.add_argument("--out", type=Path, default=HERE / "results_chunked.md")
+    ap.add_argument(
+        "--reuse-zarr", action="store_true", help="analyse an existing --zarr of this size (skip writing it)"
+    )
     ap.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
@@ -152,7 +155,10 @@ def main(argv: list[str] | None = None) -> None:
         return
     shape = (args.size,) * 3
     n_trees = max(1, int(12 * (args.size / 256) ** 3))
-    gen = write_network_zarr(args.zarr, shape, chunk=64, n_trees=n_trees, depth=6, seed=7)
+    if args.reuse_zarr:
+        gen = float("nan")  # written by an earlier run of this script with the same --size
+    else:
+        gen = write_network_zarr(args.zarr, shape, chunk=64, n_trees=n_trees, depth=6, seed=7)
     proc = subprocess.run(
         [sys.executable, __file__, "--child", str(args.zarr), str(args.budget_mb), str(args.chunk)],
         capture_output=True,
@@ -160,6 +166,7 @@ def main(argv: list[str] | None = None) -> None:
         check=True,
     )
     large = json.loads(proc.stdout.strip().splitlines()[-1])
+    print(json.dumps(large), flush=True)  # kept in the log even if the agreement step fails
     agree = _agreement(args.agree, 64)
     volume_mb = float(np.prod(shape)) / 2**20
     lines = [
