@@ -97,3 +97,29 @@ def test_centroids_independent_of_chunks_and_threads(monkeypatch, side):
         got_c, got_a = section.centroids(centres, tangents, radii, chunk=chunk)
         np.testing.assert_array_equal(got_c, ref_c)
         np.testing.assert_array_equal(got_a, ref_a)
+
+
+def test_single_threaded_is_per_thread_and_changes_no_result(monkeypatch):
+    # reference: the standard library's threading semantics (a threading.local value is seen only by the
+    # thread that set it), and the same centroids computed on several threads
+    import threading
+
+    monkeypatch.setattr(crosssection, "_THREADS", 3)
+    monkeypatch.setattr(crosssection, "_PARALLEL_SAMPLES", 1)
+    mask, aff, centre, axis = _cylinder(3.0, rotation_seed=1)
+    rng = np.random.default_rng(5)
+    centres = centre + np.outer(rng.uniform(-8, 8, 200), axis)
+    tangents = np.tile(axis, (200, 1))
+    radii = rng.uniform(3.0, 6.0, 200)
+    section = CrossSection(mask, aff)
+    many = section.centroids(centres, tangents, radii, chunk=16)
+    seen = []
+    with crosssection.single_threaded():
+        assert crosssection._threads() == 1
+        other = threading.Thread(target=lambda: seen.append(crosssection._threads()))
+        other.start()
+        other.join()
+        one = section.centroids(centres, tangents, radii, chunk=16)
+    assert seen == [3] and crosssection._threads() == 3
+    np.testing.assert_array_equal(one[0], many[0])
+    np.testing.assert_array_equal(one[1], many[1])

@@ -11,14 +11,16 @@ is the same whatever the chunks and threads.
 from __future__ import annotations
 
 import os
-from collections.abc import Callable, Iterable
+import threading
+from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import ThreadPoolExecutor
+from contextlib import contextmanager
 from typing import TypeVar
 
 import numpy as np
 from scipy import ndimage
 
-__all__ = ["CrossSection", "normal_basis"]
+__all__ = ["CrossSection", "normal_basis", "single_threaded"]
 
 # threads for the heavy calls that release the GIL (mask sampling here, k-d tree queries in radius.py):
 # the usable cores, at most 4 (callers that already run one process per core may set this to 1)
@@ -30,12 +32,35 @@ _T = TypeVar("_T")
 _R = TypeVar("_R")
 
 
+_local = threading.local()
+
+
+def _threads() -> int:
+    """Threads this thread may use: ``_THREADS``, or 1 inside :func:`single_threaded`."""
+    return getattr(_local, "threads", None) or _THREADS
+
+
+@contextmanager
+def single_threaded() -> Iterator[None]:
+    """Within this block, on the calling thread, sampling and radius queries use no extra threads.
+
+    For code that is itself one of many parallel tasks (chunked tracing on Dask), where extra threads
+    per task would oversubscribe the cores. Results do not depend on the thread count.
+    """
+    before = getattr(_local, "threads", None)
+    _local.threads = 1
+    try:
+        yield
+    finally:
+        _local.threads = before
+
+
 def _parallel_map(fn: Callable[[_T], _R], items: Iterable[_T]) -> list[_R]:
     """``[fn(x) for x in items]``, on ``_THREADS`` threads when there is more than one item."""
     items = list(items)
-    if len(items) < 2 or _THREADS < 2:
+    if len(items) < 2 or _threads() < 2:
         return [fn(x) for x in items]
-    with ThreadPoolExecutor(max_workers=_THREADS) as pool:
+    with ThreadPoolExecutor(max_workers=_threads()) as pool:
         return list(pool.map(fn, items))
 
 
@@ -98,7 +123,7 @@ class CrossSection:
         pts = np.asarray(points_mm, float)
         ijk = _rows_times(pts.reshape(-1, 3), self._inv[:3, :3]) + self._inv[:3, 3]
         out = np.empty(len(ijk), np.float32)
-        parts = _THREADS if len(ijk) >= _PARALLEL_SAMPLES else 1
+        parts = _threads() if len(ijk) >= _PARALLEL_SAMPLES else 1
         bounds = np.linspace(0, len(ijk), parts + 1).astype(int).tolist()
 
         def run(i: int) -> None:
@@ -166,7 +191,7 @@ class CrossSection:
         e1_ijk, e2_ijk = _rows_times(e1, lin), _rows_times(e2, lin)
         ga, gb = grid[:, 0], grid[:, 1]
         n = len(centres)
-        threads = _THREADS if n * len(ga) >= _PARALLEL_SAMPLES else 1
+        threads = _threads() if n * len(ga) >= _PARALLEL_SAMPLES else 1
         size = max(1, min(chunk, -(-n // threads)))
         starts = list(range(0, n, size))
         workers = min(threads, len(starts))

@@ -92,7 +92,7 @@ class BoundaryDistance:
         if self._tree is None:
             return np.full(len(pts), np.nan)
         # the query is split among threads point by point: the same distances as one thread
-        dist, _ = self._tree.query(pts, workers=_cs._THREADS if len(pts) >= _PARALLEL_POINTS else 1)
+        dist, _ = self._tree.query(pts, workers=_cs._threads() if len(pts) >= _PARALLEL_POINTS else 1)
         return dist
 
     def at_index(self, ijk: np.ndarray) -> np.ndarray:

@@ -27,7 +27,7 @@ from scipy import ndimage
 
 from vesselgeom.centerline import BranchInput, Centerline, trace_centerlines
 from vesselgeom.chunked.sources import LazyVolume
-from vesselgeom.crosssection import CrossSection
+from vesselgeom.crosssection import CrossSection, single_threaded
 from vesselgeom.radius import BoundaryDistance
 from vesselgeom.settings import Settings
 
@@ -218,5 +218,9 @@ def trace_group(
 def trace_groups(
     vol: LazyVolume, groups: list[list[BranchJob]], *, voxel_mm: float, settings: Settings
 ) -> list[list[Centerline | None]]:
-    """Trace several groups one box at a time (one Dask task): :func:`trace_group` for each."""
-    return [trace_group(vol, jobs, voxel_mm=voxel_mm, settings=settings) for jobs in groups]
+    """Trace several groups one box at a time (one Dask task): :func:`trace_group` for each.
+
+    Single-threaded inside (the tasks themselves run in parallel, one per core).
+    """
+    with single_threaded():
+        return [trace_group(vol, jobs, voxel_mm=voxel_mm, settings=settings) for jobs in groups]
