@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from vesselgeom.labelling import enclosed_background, label_foreground
+from vesselgeom.labelling import enclosed_background, fill_holes, label_foreground
 
 
 def _masks():
@@ -64,3 +64,13 @@ def test_nested_shells_have_their_regions():
     # the core ball; everything beyond the outer shell reaches the faces
     ijk, region = enclosed_background(_masks()["nested shells"], slab_voxels=30)
     assert len(set(region.tolist())) == 2
+
+
+@pytest.mark.parametrize("name", list(_masks()))
+def test_fill_holes_equals_scipy(name):
+    # reference: scipy.ndimage.binary_fill_holes (6-connected background from the array's faces)
+    mask = _masks()[name]
+    for slab in _slab_sizes(mask.shape):
+        got = fill_holes(mask, slab_voxels=slab)
+        np.testing.assert_array_equal(got, ndimage.binary_fill_holes(mask))
+        assert got is not mask

@@ -15,7 +15,7 @@ from scipy import ndimage
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
-__all__ = ["label_foreground", "enclosed_background"]
+__all__ = ["label_foreground", "enclosed_background", "fill_holes"]
 
 _FULL = np.ones((3, 3, 3), dtype=bool)
 _SIX = ndimage.generate_binary_structure(3, 1)
@@ -172,3 +172,15 @@ def enclosed_background(mask: np.ndarray, *, slab_voxels: int | None = None) -> 
     ijk, g = ijk[keep], g[keep]
     _, region = np.unique(g, return_inverse=True)
     return ijk.astype(np.int64), region.astype(np.int64)
+
+
+def fill_holes(mask: np.ndarray, *, slab_voxels: int | None = None) -> np.ndarray:
+    """:func:`scipy.ndimage.binary_fill_holes` (6-connected background), in slabs: a new bool array.
+
+    The enclosed background voxels (:func:`enclosed_background`) set to foreground; one labelling of
+    the background instead of scipy's dilation from the faces, with the working memory of a slab.
+    """
+    out = np.array(mask, dtype=bool)
+    ijk, _ = enclosed_background(out, slab_voxels=slab_voxels)
+    out[ijk[:, 0], ijk[:, 1], ijk[:, 2]] = True
+    return out

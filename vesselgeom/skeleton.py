@@ -13,6 +13,7 @@ import numpy as np
 from scipy import ndimage
 from skimage.morphology import skeletonize
 
+from . import labelling
 from .labelling import enclosed_background, label_foreground
 
 __all__ = ["Component", "iter_components", "thin"]
@@ -39,11 +40,6 @@ class Component:
     offset: np.ndarray
     mask: np.ndarray
     touches_border: bool
-
-
-def _fill_holes(crop: np.ndarray) -> np.ndarray:
-    """:func:`scipy.ndimage.binary_fill_holes` (6-connected background) of a small crop."""
-    return ndimage.binary_fill_holes(crop)
 
 
 def _hole_owners(cavity_ijk: np.ndarray, region: np.ndarray, flat: np.ndarray, labels: np.ndarray, shape):
@@ -139,7 +135,7 @@ def iter_components(mask: np.ndarray, *, min_voxels: float, fill_holes: bool = T
             h = holes_of[lab] - lo + 1
             crop[h[:, 0], h[:, 1], h[:, 2]] = True
         if lab in nested_set:
-            crop[1:-1, 1:-1, 1:-1] = _fill_holes(crop[1:-1, 1:-1, 1:-1])
+            crop[1:-1, 1:-1, 1:-1] = labelling.fill_holes(crop[1:-1, 1:-1, 1:-1])
         del vox, local  # not held while the consumer works on the component
         yield Component(kept, lo - 1, crop, touches)
 

@@ -1,7 +1,7 @@
 """Tracing in groups: the same centrelines as the in-memory pipeline, groups that respect their limits,
 rows in branch order whatever order tasks finish in, and traced centrelines released as tasks finish.
 
-References: :func:`scipy.ndimage.binary_fill_holes` for hole filling; the in-memory pipeline's own steps
+References: the in-memory pipeline's own steps
 (:func:`vesselgeom.skeleton.iter_components` crops, ``thin``, ``build_graph``, ``prune_spurs``,
 ``trace_centerlines`` on each component's crop, as in ``vesselgeom.pipeline.analyze_volume``) for the
 centrelines; :func:`vesselgeom.analyze` for the tables.
@@ -14,7 +14,6 @@ import weakref
 
 import numpy as np
 import pytest
-from scipy import ndimage
 
 import vesselgeom as vg
 from vesselgeom import phantoms as P
@@ -32,25 +31,9 @@ from vesselgeom.chunked import run as chunked_run  # noqa: E402
 from vesselgeom.chunked.tracing import (  # noqa: E402
     BranchJob,
     branch_boxes,
-    fill_holes,
     group_branches,
     trace_group,
 )
-
-
-@pytest.mark.parametrize("seed", range(4))
-def test_fill_holes_equals_scipy(seed):
-    """Reference: scipy.ndimage.binary_fill_holes (6-connected background from the array faces)."""
-    rng = np.random.default_rng(seed)
-    m = rng.random((17, 13, 11)) < 0.7  # cavities of many shapes, some open to the faces
-    ref = ndimage.binary_fill_holes(m)
-    assert (ref & ~m).any()  # the case has holes to fill
-    np.testing.assert_array_equal(fill_holes(m), ref)
-    shell = np.zeros((9, 9, 9), bool)
-    shell[2:7, 2:7, 2:7] = True
-    shell[3:6, 3:6, 3:6] = False
-    np.testing.assert_array_equal(fill_holes(shell), ndimage.binary_fill_holes(shell))
-    np.testing.assert_array_equal(fill_holes(np.ones((3, 3, 3), bool)), np.ones((3, 3, 3), bool))
 
 
 def test_groups_partition_within_limit():

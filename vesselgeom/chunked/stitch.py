@@ -15,6 +15,7 @@ import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
+from vesselgeom import labelling
 from vesselgeom.chunked.sources import LazyVolume
 from vesselgeom.graph import Branch, SkeletonGraph, build_graph_from_coords
 from vesselgeom.radius import BoundaryDistance
@@ -146,15 +147,13 @@ def junction_radii(
     so each point's nearest background voxel lies inside); :class:`vesselgeom.radius.BoundaryDistance` is
     built on it as on a component's crop in memory.
     """
-    from scipy import ndimage
-
     positions = np.asarray(positions, float).reshape(-1, 3)
     margins = np.asarray(margins, int).reshape(-1)
     lo = np.floor((positions - margins[:, None]).min(axis=0)).astype(int)
     hi = np.ceil((positions + margins[:, None]).max(axis=0)).astype(int) + 1
     m = vol.read_box(lo, hi)
     if fill_holes:
-        m = ndimage.binary_fill_holes(m)
+        m = labelling.fill_holes(m)
     aff = vol.affine.copy()
     aff[:3, 3] = vol.affine[:3, :3] @ lo + vol.affine[:3, 3]
     return BoundaryDistance(m, aff).at_index(positions - lo)

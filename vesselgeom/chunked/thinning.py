@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
+from vesselgeom import labelling
 from vesselgeom.chunked.sources import LazyVolume
 from vesselgeom.radius import BoundaryDistance
 from vesselgeom.skeleton import thin
@@ -106,7 +107,7 @@ def survey_chunk(vol: LazyVolume, lo: np.ndarray, hi: np.ndarray, *, probe: int,
     if count == 0:
         return Survey(0, 0, False)
     if fill_holes:
-        m = ndimage.binary_fill_holes(m)
+        m = labelling.fill_holes(m)
     depth = 0
     while depth <= probe and m[core].any():
         m = ndimage.binary_erosion(m, _CROSS, border_value=0)
@@ -158,7 +159,7 @@ def thin_chunk(
     if not m[core].any():
         return CoreSkeleton.empty()
     if fill_holes:
-        m = ndimage.binary_fill_holes(m)
+        m = labelling.fill_holes(m)
     skel = thin(m)
     local = np.argwhere(skel[core]) + (lo - blo)
     del skel

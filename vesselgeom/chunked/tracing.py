@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
+from vesselgeom import labelling
 from vesselgeom.centerline import BranchInput, Centerline, trace_centerlines
 from vesselgeom.chunked.sources import LazyVolume
 from vesselgeom.crosssection import CrossSection, single_threaded
@@ -38,7 +39,6 @@ __all__ = [
     "branch_box",
     "branch_boxes",
     "group_branches",
-    "fill_holes",
     "trace_group",
     "trace_groups",
 ]
@@ -128,22 +128,6 @@ def group_branches(
     return out
 
 
-def fill_holes(piece: np.ndarray) -> np.ndarray:
-    """:func:`scipy.ndimage.binary_fill_holes` (6-connected background), by labelling the background once.
-
-    Background voxels not 6-connected to the array's faces are filled: the same result as scipy's
-    iterated dilation from the faces, in one labelling pass.
-    """
-    bg, n = ndimage.label(~piece)
-    if n == 0:
-        return piece.copy()
-    outside = np.zeros(n + 1, bool)
-    for face in (bg[0], bg[-1], bg[:, 0], bg[:, -1], bg[:, :, 0], bg[:, :, -1]):
-        outside[face.ravel()] = True
-    outside[0] = False  # foreground
-    return ~outside[bg]
-
-
 def _piece(
     labels: np.ndarray, objects: list, ids: tuple[int, ...], *, fill: bool
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -166,7 +150,7 @@ def _piece(
     else:
         inner[...] = np.isin(crop, ids)
     if fill:
-        piece = fill_holes(piece)
+        piece = labelling.fill_holes(piece)
     return piece, (a - 1).astype(np.int64)
 
 
