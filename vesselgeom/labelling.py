@@ -66,6 +66,41 @@ def _join(n: int, pairs: list[np.ndarray]) -> np.ndarray:
     return group
 
 
+class _LabelledSlabs:
+    """Labels slab by slab, joined across seams: iterate for (z0, z1, labels, n, offset) per slab.
+
+    A slab's label ``k`` (1..n) is the provisional label ``k + offset``; after the iteration,
+    :meth:`groups` gives every provisional label's group (labels that meet across a seam share one).
+    ``background``: label the background 6-connected (as hole filling sees it), else the foreground
+    26-connected (components).
+    """
+
+    def __init__(self, mask: np.ndarray, *, background: bool, slab_voxels: int | None) -> None:
+        self._mask = mask
+        self._background = background
+        self._slab_voxels = slab_voxels
+        self.count = 0
+        self._pairs: list[np.ndarray] = []
+
+    def __iter__(self):
+        prev = None
+        for z0, z1 in _slabs(self._mask.shape, self._slab_voxels):
+            part = self._mask[z0:z1]
+            lab, n = ndimage.label(
+                ~part if self._background else part, structure=_SIX if self._background else _FULL
+            )
+            yield z0, z1, lab, n, self.count
+            first = _shift(lab[0], self.count)
+            if prev is not None:
+                self._pairs.append(_seam_pairs(prev, first, full=not self._background))
+            prev = _shift(lab[-1], self.count)
+            self.count += n
+
+    def groups(self) -> np.ndarray:
+        """Group of each provisional label 1..count (index 0 unused)."""
+        return _join(self.count, self._pairs)
+
+
 def label_foreground(
     mask: np.ndarray, *, slab_voxels: int | None = None
 ) -> tuple[np.ndarray, np.ndarray, int]:
@@ -89,23 +124,16 @@ def label_foreground(
     """
     mask = np.asarray(mask, bool)
     plane = mask.shape[1] * mask.shape[2]
-    flats, provs, pairs = [], [], []
-    offset, prev = 0, None
-    for z0, z1 in _slabs(mask.shape, slab_voxels):
-        lab, n = ndimage.label(mask[z0:z1], structure=_FULL)
+    flats, provs = [], []
+    slabs = _LabelledSlabs(mask, background=False, slab_voxels=slab_voxels)
+    for z0, _, lab, _, offset in slabs:
         f = np.flatnonzero(lab)
         flats.append(f + z0 * plane)
         provs.append(lab.ravel()[f] + np.int64(offset))
-        first = _shift(lab[0], offset)
-        if prev is not None:
-            pairs.append(_seam_pairs(prev, first, full=True))
-        prev = _shift(lab[-1], offset)
-        offset += n
-        del lab
     flat = np.concatenate(flats) if flats else np.zeros(0, np.int64)
     prov = np.concatenate(provs) if provs else np.zeros(0, np.int64)
     del flats, provs
-    group = _join(offset, pairs)[prov]
+    group = slabs.groups()[prov]
     # renumber the groups 1.. in order of their first voxel (flat is ascending)
     uniq, first = np.unique(group, return_index=True)
     rank = np.empty(len(uniq), np.int32)
@@ -134,10 +162,9 @@ def enclosed_background(mask: np.ndarray, *, slab_voxels: int | None = None) -> 
     """
     mask = np.asarray(mask, bool)
     nz = mask.shape[0]
-    kept_ijk, kept_prov, pairs, outside = [], [], [], []
-    offset, prev = 0, None
-    for z0, z1 in _slabs(mask.shape, slab_voxels):
-        lab, n = ndimage.label(~mask[z0:z1], structure=_SIX)
+    kept_ijk, kept_prov, outside = [], [], []
+    slabs = _LabelledSlabs(mask, background=True, slab_voxels=slab_voxels)
+    for z0, z1, lab, n, offset in slabs:
         faces = [lab[:, 0, :], lab[:, -1, :], lab[:, :, 0], lab[:, :, -1]]
         if z0 == 0:
             faces.append(lab[0])
@@ -155,15 +182,9 @@ def enclosed_background(mask: np.ndarray, *, slab_voxels: int | None = None) -> 
             ijk[:, 0] += z0
             kept_ijk.append(ijk)
             kept_prov.append(lab[sel].astype(np.int64) + offset)
-        first = _shift(lab[0], offset)
-        if prev is not None:
-            pairs.append(_seam_pairs(prev, first, full=False))
-        prev = _shift(lab[-1], offset)
-        offset += n
-        del lab
     if not kept_ijk:
         return np.zeros((0, 3), np.int64), np.zeros(0, np.int64)
-    group = _join(offset, pairs)
+    group = slabs.groups()
     open_group = np.zeros(group.max() + 1, bool)
     open_group[group[np.concatenate(outside)]] = True
     ijk = np.concatenate(kept_ijk)
