@@ -175,6 +175,7 @@ def build_graph_from_coords(coords: np.ndarray, shape: tuple[int, ...]) -> Skele
     slot = np.where(first, 0, 1)
     nb[src, slot] = dst
     chain_deg = (nb >= 0).sum(axis=1)
+    del jj, adj_j, cc, adj_c, src, dst, o, first, slot  # freed before the walk (chunked skeletons are large)
 
     # pick one start voxel per chain: an end of the chain (chain degree <= 1), or for closed chains the
     # lowest voxel, whose link to one neighbour is cut so the walk runs once around
@@ -210,6 +211,7 @@ def build_graph_from_coords(coords: np.ndarray, shape: tuple[int, ...]) -> Skele
     # junction neighbours of each voxel (at most two for chain voxels)
     jn = pairs[is_chain[pairs[:, 0]] & is_junc[pairs[:, 1]]]
     jn = np.concatenate([jn, pairs[is_junc[pairs[:, 0]] & is_chain[pairs[:, 1]]][:, ::-1]])
+    del pairs, nb, chain_deg
     jn_of: dict[int, list[int]] = {}
     for v, j in zip(jn[:, 0].tolist(), jlab[jn[:, 1]].tolist(), strict=True):
         lst = jn_of.setdefault(v, [])
