@@ -41,8 +41,9 @@ def test_batches_give_the_same_tables(masks, name, batch, monkeypatch):
     assert np.all(np.isfinite(angles))  # every junction's branches were found across batches
 
 
-def test_batches_added_out_of_order_come_back_in_branch_order(masks):
-    # reference: the same centrelines added in branch order; by_branch_id restores that order exactly
+@pytest.fixture(scope="module")
+def traced(masks):
+    """Centrelines and contexts of the network's largest component, traced in memory."""
     from vesselgeom.centerline import BranchInput, trace_centerlines
     from vesselgeom.crosssection import CrossSection
     from vesselgeom.graph import build_graph
@@ -50,7 +51,6 @@ def test_batches_added_out_of_order_come_back_in_branch_order(masks):
     from vesselgeom.radius import BoundaryDistance
     from vesselgeom.settings import Settings
     from vesselgeom.skeleton import iter_components, thin
-    from vesselgeom.tabulate import TableBuilder
 
     mask, affine = masks["network"]
     settings = Settings()
@@ -70,6 +70,14 @@ def test_batches_added_out_of_order_come_back_in_branch_order(masks):
         settings=settings,
     )
     assert len(lines) >= 4
+    return lines, contexts, settings
+
+
+def test_batches_added_out_of_order_come_back_in_branch_order(traced):
+    # reference: the same centrelines added in branch order; by_branch_id restores that order exactly
+    from vesselgeom.tabulate import TableBuilder
+
+    lines, contexts, settings = traced
     kw = dict(settings=settings, voxel_mm=1.0, coarsest_voxel_mm=1.0)
     ordered, shuffled = TableBuilder(**kw), TableBuilder(**kw)
     for lo in range(0, len(lines), 2):
@@ -79,3 +87,58 @@ def test_batches_added_out_of_order_come_back_in_branch_order(masks):
     a, b = ordered.tables(), shuffled.tables(by_branch_id=True)
     for x, y in zip(a, b, strict=True):
         pd.testing.assert_frame_equal(x, y, check_exact=True)
+
+
+@pytest.mark.parametrize("reverse", [False, True])
+def test_spilled_points_give_the_same_tables(traced, tmp_path, monkeypatch, reverse):
+    # reference: the in-memory builder; points spilled to files, reordered in blocks of 5 rows
+    # (smaller than a branch, so runs of one branch span blocks) and mapped back must equal it exactly
+    from vesselgeom import pointstore
+    from vesselgeom.tabulate import TableBuilder
+
+    monkeypatch.setattr(pointstore, "_BLOCK_ROWS", 5)
+    lines, contexts, settings = traced
+    kw = dict(settings=settings, voxel_mm=1.0, coarsest_voxel_mm=1.0)
+    memory, spilled = TableBuilder(**kw), TableBuilder(**kw, spill_dir=tmp_path)
+    starts = list(range(0, len(lines), 3))
+    for lo in reversed(starts) if reverse else starts:
+        for builder in (memory, spilled):
+            builder.add_branches(lines[lo : lo + 3], contexts[lo : lo + 3])
+    assert any(p.name.startswith("points.") for p in tmp_path.iterdir())  # rows went to disk
+    a = memory.tables(by_branch_id=True)
+    b = spilled.tables(by_branch_id=True)
+    assert list(tmp_path.iterdir()) == []  # files unlinked once mapped
+    assert _is_mapped(b[1]["arc_mm"].to_numpy())
+    assert len(b[1]) == sum(len(cl.arc) for cl in lines if cl is not None)
+    for x, y in zip(a, b, strict=True):
+        pd.testing.assert_frame_equal(x, y, check_exact=True)
+    ids = b[1]["branch_id"].to_numpy()
+    assert np.all(ids[1:] >= ids[:-1])
+    b[1].loc[0, "radius_mm"] = -1.0  # copy-on-write mapping: the table can be changed
+    assert b[1].loc[0, "radius_mm"] == -1.0
+
+
+def test_spilled_builder_without_rows_and_discard(traced, tmp_path):
+    from vesselgeom.tabulate import TableBuilder
+
+    lines, contexts, settings = traced
+    kw = dict(settings=settings, voxel_mm=1.0, coarsest_voxel_mm=1.0)
+    empty = TableBuilder(**kw, spill_dir=tmp_path)
+    branches, points, junctions = empty.tables()
+    assert (len(branches), len(points), len(junctions)) == (0, 0, 0)
+    assert list(points.columns)[:2] == ["branch_id", "arc_mm"]
+    assert list(tmp_path.iterdir()) == []
+    failed = TableBuilder(**kw, spill_dir=tmp_path)
+    failed.add_branches(lines[:2], contexts[:2])
+    assert list(tmp_path.iterdir())
+    failed.discard()  # a run that stops before its tables leaves nothing behind
+    assert list(tmp_path.iterdir()) == []
+
+
+def _is_mapped(values: np.ndarray) -> bool:
+    """Whether an array's memory belongs to a numpy memmap (walking its chain of bases)."""
+    while values is not None:
+        if isinstance(values, np.memmap):
+            return True
+        values = getattr(values, "base", None)
+    return False

@@ -88,6 +88,12 @@ def _parser() -> argparse.ArgumentParser:
     big.add_argument(
         "--spacing", nargs=3, type=float, metavar=("SX", "SY", "SZ"), help="voxel size (mm) of a plain Zarr"
     )
+    big.add_argument(
+        "--scratch",
+        default=None,
+        metavar="DIR",
+        help="folder for the point rows while they are collected (default: the output folder's parent)",
+    )
     a.add_argument("--quiet", action="store_true", help="print nothing but errors")
 
     b = sub.add_parser("batch", help="analyse every subject of a cohort (manifest CSV or folder)")
@@ -135,6 +141,12 @@ def _wants_chunked(args: argparse.Namespace) -> bool:
     return nbytes > args.memory_budget * 2**20
 
 
+def _existing_parent(path: str) -> str | None:
+    """The output folder's parent when it exists (a disk the user chose), else None (TMPDIR)."""
+    parent = Path(path).resolve().parent
+    return str(parent) if parent.is_dir() else None
+
+
 def _run_analyze(args: argparse.Namespace) -> int:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", VesselgeomWarning)
@@ -152,6 +164,7 @@ def _run_analyze(args: argparse.Namespace) -> int:
                 memory_budget_mb=args.memory_budget,
                 scheduler=args.scheduler,
                 spacing=tuple(args.spacing) if args.spacing else None,
+                scratch_dir=args.scratch or _existing_parent(args.out),
             )
         else:
             result = analyze(args.mask, settings=_settings(args))

@@ -8,13 +8,16 @@ ends. Junctions are added once the branches meeting there have been added.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Sequence
 
 import numpy as np
 import pandas as pd
 
 from .centerline import Centerline
+from .errors import InputError
 from .measure import BranchContext, branch_columns, end_directions, junction_row, point_columns_many
+from .pointstore import SpilledPoints
 from .settings import Settings
 from .tables import BRANCH_COLUMNS, JUNCTION_COLUMNS, POINT_COLUMNS, make_table
 
@@ -31,33 +34,64 @@ class TableBuilder:
         Mean voxel size, mm (curvature floor).
     coarsest_voxel_mm : float
         Largest voxel size, mm (validated-radius limit).
+    spill_dir : path, optional
+        Keep the point rows in files in this existing folder instead of memory
+        (:class:`~vesselgeom.pointstore.SpilledPoints`); the points table is then memory-mapped.
+
+    Notes
+    -----
+    Held per branch: its typed branch row (about 360 bytes) and its two end directions (48 bytes, in an
+    array indexed by branch id, so ids should be small positive integers as both pipelines number them).
+    Held per point: 89 bytes, unless spilled.
     """
 
-    def __init__(self, *, settings: Settings, voxel_mm: float, coarsest_voxel_mm: float) -> None:
+    def __init__(
+        self,
+        *,
+        settings: Settings,
+        voxel_mm: float,
+        coarsest_voxel_mm: float,
+        spill_dir: str | os.PathLike[str] | None = None,
+    ) -> None:
         self._settings = settings
         self._voxel_mm = voxel_mm
         self._coarsest = coarsest_voxel_mm
-        self._branches: list[dict[str, list]] = []
+        self._branches: list[pd.DataFrame] = []
         self._points: list[dict[str, np.ndarray]] = []
+        self._spilled = None if spill_dir is None else SpilledPoints(spill_dir)
         self._junctions: list[dict] = []
-        self._dirs: dict[int, tuple[np.ndarray, np.ndarray] | None] = {}
+        self._dirs = np.full((0, 2, 3), np.nan)  # row = branch id: directions away from start, end
+        self._traced = np.zeros(0, bool)
 
     def add_branches(self, lines: Sequence[Centerline | None], contexts: Sequence[BranchContext]) -> None:
         """Measure a batch of traced branches (None where tracing failed); the lines may then be dropped."""
         if not len(lines):
             return
-        self._branches.append(
-            branch_columns(
-                lines,
-                contexts,
-                settings=self._settings,
-                voxel_mm=self._voxel_mm,
-                coarsest_voxel_mm=self._coarsest,
-            )
+        columns = branch_columns(
+            lines,
+            contexts,
+            settings=self._settings,
+            voxel_mm=self._voxel_mm,
+            coarsest_voxel_mm=self._coarsest,
         )
-        self._points.append(point_columns_many(lines, [c.branch_id for c in contexts]))
-        for cl, ctx in zip(lines, contexts, strict=True):
-            self._dirs[ctx.branch_id] = None if cl is None else end_directions(cl, settings=self._settings)
+        self._branches.append(make_table(BRANCH_COLUMNS, columns))
+        points = point_columns_many(lines, [c.branch_id for c in contexts])
+        if self._spilled is None:
+            self._points.append(points)
+        else:
+            self._spilled.add(points)
+        del points
+        ids = np.array([c.branch_id for c in contexts], np.int64)
+        if ids.min() < 0:
+            raise InputError(f"<array>: branch ids must be non-negative, got {int(ids.min())}")
+        if ids.max() >= len(self._dirs):
+            grow = max(int(ids.max()) + 1, 2 * len(self._dirs))
+            self._dirs = np.concatenate([self._dirs, np.full((grow - len(self._dirs), 2, 3), np.nan)])
+            self._traced = np.concatenate([self._traced, np.zeros(grow - len(self._traced), bool)])
+        for cl, bid in zip(lines, ids.tolist(), strict=True):
+            if cl is not None:
+                self._dirs[bid] = end_directions(cl, settings=self._settings)
+                self._traced[bid] = True
 
     def add_junction(
         self,
@@ -70,8 +104,8 @@ class TableBuilder:
         """Add a junction row; ``ends`` lists (branch_id, at_start) of every branch end at the node."""
         dirs = []
         for bid, at_start in ends:
-            d = self._dirs[bid]
-            dirs.append((bid, None if d is None else d[0 if at_start else 1]))
+            traced = bid < len(self._traced) and self._traced[bid]
+            dirs.append((bid, self._dirs[bid, 0 if at_start else 1].copy() if traced else None))
         self._junctions.append(junction_row(node_id, component_id, position_mm, radius_mm, dirs))
 
     def tables(self, *, by_branch_id: bool = False) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -81,23 +115,29 @@ class TableBuilder:
         their order) when batches were added out of order (chunked tracing). Call once: the collected
         point columns are handed over to the table, one column at a time.
         """
-        branches = _merge_lists(self._branches, BRANCH_COLUMNS)
-        if by_branch_id and branches is not None:
-            perm = np.argsort(np.asarray(branches["branch_id"]), kind="stable").tolist()
-            branches = {k: [v[i] for i in perm] for k, v in branches.items()}
-        points = _merge_arrays(self._points, POINT_COLUMNS, by_branch_id=by_branch_id)
-        self._points = []
+        branches = make_table(BRANCH_COLUMNS)
+        if self._branches:
+            branches = pd.concat(self._branches, ignore_index=True)
+            self._branches = []
+            if by_branch_id:
+                ids = branches["branch_id"].to_numpy()
+                if np.any(ids[1:] < ids[:-1]):
+                    branches = branches.iloc[np.argsort(ids, kind="stable")].reset_index(drop=True)
+        if self._spilled is None:
+            points = _merge_arrays(self._points, POINT_COLUMNS, by_branch_id=by_branch_id)
+            self._points = []
+        else:
+            points = self._spilled.columns(by_branch_id=by_branch_id)
         rows = self._junctions
         junctions = {c.name: [r[c.name] for r in rows] for c in JUNCTION_COLUMNS} if rows else None
         point_table = make_table(POINT_COLUMNS, points, copy=False)  # the merged columns are handed over
         del points
-        return make_table(BRANCH_COLUMNS, branches), point_table, make_table(JUNCTION_COLUMNS, junctions)
+        return branches, point_table, make_table(JUNCTION_COLUMNS, junctions)
 
-
-def _merge_lists(parts: list[dict[str, list]], schema) -> dict[str, list] | None:
-    if not parts:
-        return None
-    return {c.name: [v for p in parts for v in p[c.name]] for c in schema}
+    def discard(self) -> None:
+        """Remove spilled point files (when the run fails before :meth:`tables`)."""
+        if self._spilled is not None:
+            self._spilled.discard()
 
 
 def _merge_arrays(

@@ -23,7 +23,9 @@ proportion to the skeleton and the output, not the volume); each task holds one 
 from __future__ import annotations
 
 import ctypes
+import os
 import platform
+import tempfile
 import time
 from collections.abc import Callable
 from typing import Any
@@ -69,6 +71,7 @@ def analyze_chunked(
     scheduler: Any = None,
     memory_budget_mb: float | None = None,
     spacing: float | tuple[float, float, float] | None = None,
+    scratch_dir: str | os.PathLike[str] | None = None,
     **overrides: Any,
 ) -> Result:
     """Measure every branch of a vessel mask chunk by chunk, never holding the whole volume.
@@ -96,6 +99,11 @@ def analyze_chunked(
         that fits.
     spacing : float or 3 floats, mm, optional
         Voxel size for plain Zarr arrays and in-memory arrays.
+    scratch_dir : path, optional
+        An existing folder on a disk with room for twice the points table (89 bytes per output point):
+        point rows are written there as tasks finish (:class:`~vesselgeom.pointstore.SpilledPoints`),
+        in a temporary sub-folder that is removed before returning. Default: the system's temporary
+        folder (``TMPDIR``).
 
     Returns
     -------
@@ -103,6 +111,7 @@ def analyze_chunked(
         The same tables as :func:`vesselgeom.analyze`; ``run["mode"] == "chunked"`` and
         ``run["chunking"]`` records chunk size, halo, depth, chunk count, scheduler and budget.
         ``volume`` is None (no whole mask exists), so ``Result.write`` skips the label volume and qc.png.
+        ``points`` is memory-mapped from an unlinked file (copy-on-write), not held in memory.
     """
     settings = (settings or Settings()).replace(**overrides) if overrides else settings or Settings()
     if not isinstance(chunk_size, int | np.integer) or chunk_size < 8:
@@ -111,6 +120,8 @@ def analyze_chunked(
         raise InputError(f"<chunked>: halo must be a positive integer (voxels), got {halo!r}")
     if memory_budget_mb is not None and not memory_budget_mb > 0:
         raise InputError(f"<chunked>: memory_budget_mb must be positive, got {memory_budget_mb!r}")
+    if scratch_dir is not None and not os.path.isdir(scratch_dir):
+        raise InputError(f"{scratch_dir}: scratch folder does not exist; create it or pass another")
     t0 = time.perf_counter()
     vol = open_lazy(source, spacing=spacing, label=settings.label, threshold=settings.threshold)
     timings = {"open": time.perf_counter() - t0}
@@ -169,7 +180,10 @@ def analyze_chunked(
         del voxels  # the plan holds what tracing and the tables need
         _return_freed_memory()
         tasks = _trace_tasks(plan, vol.affine, (chunk_size + 2 * halo) ** 3)
-        tables, measure_s = _trace_and_measure(vol, comps, plan, tasks, radii, spacing_mm, settings, stream)
+        with tempfile.TemporaryDirectory(prefix="vesselgeom-points-", dir=scratch_dir) as spill:
+            tables, measure_s = _trace_and_measure(
+                vol, comps, plan, tasks, radii, spacing_mm, settings, stream, spill
+            )
         timings["trace"] = time.perf_counter() - t - measure_s
         timings["measure"] = measure_s
         del plan, tasks
@@ -381,16 +395,21 @@ def _trace_and_measure(
     spacing_mm: np.ndarray,
     settings: Settings,
     stream: Callable,
+    spill_dir: str,
 ) -> tuple[tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame], float]:
     """Trace the branches in tasks and measure each task's branches as its result arrives.
 
     Rows are built as :func:`vesselgeom.pipeline.analyze_volume` builds them (``TableBuilder``): each
     task's centrelines are measured and dropped as soon as the task is collected (in whatever order the
     tasks finish), junctions are added once every branch is in, and the branch and point rows are put
-    in branch-id order at the end. Returns the three tables and the seconds spent measuring.
+    in branch-id order at the end; point rows go to files in ``spill_dir``, and the points table is
+    mapped from them. Returns the three tables and the seconds spent measuring.
     """
     builder = TableBuilder(
-        settings=settings, voxel_mm=float(np.mean(spacing_mm)), coarsest_voxel_mm=float(spacing_mm.max())
+        settings=settings,
+        voxel_mm=float(np.mean(spacing_mm)),
+        coarsest_voxel_mm=float(spacing_mm.max()),
+        spill_dir=spill_dir,
     )
     measure_s = 0.0
     voxel_mm = float(np.mean(spacing_mm))
