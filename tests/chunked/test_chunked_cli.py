@@ -34,8 +34,14 @@ def test_chunked_cli_matches_in_memory(tmp_path):
     nib.save(img, src)
     a = _run([str(src), "--out", "mem"], tmp_path)
     # a budget far below one worker process: runs in-process instead of stalling a paused worker
-    b = _run([str(src), "--out", "chk", "--chunked", "--chunk-size", "40", "--memory-budget", "64"], tmp_path)
+    (tmp_path / "scratch").mkdir()
+    opts = ["--chunked", "--chunk-size", "40", "--memory-budget", "64", "--scratch", "scratch"]
+    b = _run([str(src), "--out", "chk", *opts], tmp_path)
     assert a.returncode == 0 and b.returncode == 0, b.stderr
+    assert list((tmp_path / "scratch").iterdir()) == []  # point files removed
+    mem_points = pd.read_csv(tmp_path / "mem" / "points.csv")
+    chk_points = pd.read_csv(tmp_path / "chk" / "points.csv")
+    assert len(chk_points) == pytest.approx(len(mem_points), rel=0.01)
     mem = pd.read_csv(tmp_path / "mem" / "branches.csv")
     chk = pd.read_csv(tmp_path / "chk" / "branches.csv")
     assert len(mem) == len(chk) == 7
