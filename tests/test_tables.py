@@ -399,3 +399,161 @@ def test_unsigned_values_beyond_int64_are_refused():
     cols["branch_id"] = np.array([2**63 + 5, 1], np.uint64)  # does not fit int64 (numpy iinfo)
     with pytest.raises(InputError):
         make_table(POINT_COLUMNS, cols)
+
+
+def _to_csv_reference(table):
+    # pandas' DataFrame.to_csv on the whole typed table at once, with the options the module
+    # documents (schema order, "%.9g", empty missing fields, "\n", no index): the single-pass text.
+    text = table.to_csv(index=False, float_format="%.9g", na_rep="", lineterminator="\n")
+    return text.encode("utf-8")
+
+
+def _files(folder):
+    return sorted(p.name for p in folder.iterdir())
+
+
+@pytest.mark.parametrize("name", ["extra.csv", "points.csv", "branches.csv"])
+def test_block_writes_equal_one_block_and_pandas(tmp_path, monkeypatch, name):
+    import vesselgeom.tables as tables
+
+    schema = ALL_SCHEMAS[name]
+    data = _random_data(schema, 3001, seed=11)  # NaN, bools, text with quotes/newlines, Int64 NA
+    table = make_table(schema, data)
+    monkeypatch.setattr(tables, "_CSV_BLOCK_ROWS", 10**6)  # larger than the table: one block
+    write_csv(table, tmp_path / "one.csv", schema=schema)
+    monkeypatch.setattr(tables, "_CSV_BLOCK_ROWS", 7)  # 429 blocks, the last one partial
+    write_csv(table, tmp_path / "seven.csv", schema=schema)
+    # reversed column order and a non-default index give the same text
+    shuffled = table.iloc[:, ::-1].set_axis(np.arange(len(table))[::-1] * 3)
+    write_csv(shuffled, tmp_path / "shuffled.csv", schema=schema)
+    one = (tmp_path / "one.csv").read_bytes()
+    assert one == (tmp_path / "seven.csv").read_bytes() == (tmp_path / "shuffled.csv").read_bytes()
+    assert one == _to_csv_reference(table)
+    # Python's csv module as independent reader: header plus one record per row
+    assert len(list(csv.reader(io.StringIO(one.decode("utf-8"))))) == 3001 + 1
+
+
+@pytest.mark.parametrize("rows", [7, 14, 15])
+def test_block_boundaries_at_table_end(tmp_path, monkeypatch, rows):
+    import vesselgeom.tables as tables
+
+    table = make_table(EXTRA_COLUMNS, _random_data(EXTRA_COLUMNS, rows, seed=rows))
+    monkeypatch.setattr(tables, "_CSV_BLOCK_ROWS", 7)  # exactly one, exactly two, two plus one row
+    write_csv(table, tmp_path / "t.csv", schema=EXTRA_COLUMNS)
+    # pandas' whole-table to_csv is the reference text
+    assert (tmp_path / "t.csv").read_bytes() == _to_csv_reference(table)
+
+
+@pytest.mark.parametrize("name", sorted(ALL_SCHEMAS))
+def test_blocked_empty_table_is_header_only(tmp_path, monkeypatch, name):
+    import vesselgeom.tables as tables
+
+    schema = ALL_SCHEMAS[name]
+    monkeypatch.setattr(tables, "_CSV_BLOCK_ROWS", 7)
+    write_csv(make_table(schema), tmp_path / name, schema=schema)
+    # RFC 4180 header record: the names joined by commas, then the "\n" line ending
+    assert (tmp_path / name).read_bytes() == (",".join(c.name for c in schema) + "\n").encode()
+    assert _files(tmp_path) == [name]
+
+
+def test_blocked_write_of_memmap_columns_copies_nothing_whole(tmp_path, monkeypatch):
+    import tracemalloc
+
+    import vesselgeom.tables as tables
+
+    n = 40_000
+    data = _random_data(POINT_COLUMNS, n, seed=12)
+    maps = {}
+    for column in POINT_COLUMNS:
+        file = tmp_path / f"{column.name}.npy"
+        np.save(file, np.asarray(data[column.name]))
+        # numpy's np.load(mmap_mode=...) maps the file: read-only ("r") or copy-on-write ("c")
+        maps[column.name] = np.load(file, mmap_mode="r" if column.dtype == "float64" else "c")
+    table = make_table(POINT_COLUMNS, maps, copy=False)
+    assert np.shares_memory(table["x_mm"].to_numpy(), maps["x_mm"])  # numpy: no copy was made
+    size = sum(values.nbytes for values in maps.values())
+    out = tmp_path / "out"
+    out.mkdir()
+    peaks = {}
+    for rows in (500, 10**6):
+        monkeypatch.setattr(tables, "_CSV_BLOCK_ROWS", rows)
+        # tracemalloc (standard library) sees numpy's and pandas' buffers: the peak of new memory
+        tracemalloc.start()
+        try:
+            write_csv(table, out / f"{rows}.csv", schema=POINT_COLUMNS)
+            peaks[rows] = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+    # one block of the whole table copies at least the table; blocks of 500 rows a small part of it
+    assert peaks[10**6] > size and peaks[500] < size / 4
+    # pandas' whole-table to_csv of an in-memory copy is the reference text
+    reference = _to_csv_reference(make_table(POINT_COLUMNS, data))
+    assert (out / "500.csv").read_bytes() == (out / f"{10**6}.csv").read_bytes() == reference
+
+
+@pytest.mark.parametrize(
+    ("column", "values", "message"),
+    [
+        # pandas' "str" dtype with NaN: a missing text, refused as make_table refuses it
+        ("label", pd.Series(["x"] * 120, dtype="str"), "missing values"),
+        # float64 values for the nullable integer column: 2.5 is no integer (pandas Int64 cast)
+        ("count", pd.Series(np.arange(120.0)), "non-integer"),
+    ],
+)
+def test_bad_value_in_late_block_leaves_no_file(tmp_path, monkeypatch, column, values, message):
+    import vesselgeom.tables as tables
+
+    frame = make_table(EXTRA_COLUMNS, _random_data(EXTRA_COLUMNS, 120, seed=13))
+    values = values.copy()
+    values[50] = np.nan if column == "label" else 2.5  # row 50: in the eighth block of 7 rows
+    frame[column] = values
+    built = []
+    original = tables._build
+
+    def counting_build(*args, **kwargs):
+        built.append(len(args[1]))
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(tables, "_build", counting_build)
+    monkeypatch.setattr(tables, "_CSV_BLOCK_ROWS", 7)
+    seen = []
+    real_open = os.open
+
+    def spying_open(file, *args, **kwargs):
+        seen.append(os.fspath(file))
+        return real_open(file, *args, **kwargs)
+
+    monkeypatch.setattr(os, "open", spying_open)
+    with pytest.raises(InputError, match=rf"t\.csv: column '{column}'.*{message}"):
+        write_csv(frame, tmp_path / "t.csv", schema=EXTRA_COLUMNS)
+    # the failure came from the eighth block, after the temporary file was opened and written to
+    assert built == [7] * 8
+    assert len(seen) == 1 and seen[0].endswith(".tmp")
+    assert _files(tmp_path) == []  # neither the table nor the temporary file is left
+
+
+def test_text_in_float_column_leaves_no_file(tmp_path, monkeypatch):
+    import vesselgeom.tables as tables
+
+    frame = make_table(EXTRA_COLUMNS, _random_data(EXTRA_COLUMNS, 120, seed=14))
+    values = frame["value_mm"].astype(object)
+    values[50] = "1.5"  # text at row 50 of a float column
+    frame["value_mm"] = values
+    monkeypatch.setattr(tables, "_CSV_BLOCK_ROWS", 7)
+    # make_table refuses the same frame; write_csv must refuse it too and leave the folder empty
+    with pytest.raises(InputError, match="column 'value_mm'"):
+        make_table(EXTRA_COLUMNS, frame)
+    with pytest.raises(InputError, match=r"t\.csv: column 'value_mm' \(float64\)"):
+        write_csv(frame, tmp_path / "t.csv", schema=EXTRA_COLUMNS)
+    assert _files(tmp_path) == []
+
+
+@pytest.mark.parametrize("name", ["points.csv", "junctions.csv"])
+def test_object_dtype_columns_with_fitting_values_are_accepted(name):
+    # reference: the same table from its typed columns; pandas hands object columns (e.g. after
+    # astype(object) or from mixed sources) to make_table, which must read their values, not refuse them
+    schema = TABLE_SCHEMAS[name]
+    typed = make_table(schema, _random_data(schema, 9, seed=21))
+    objects = typed.astype(object)
+    assert all(objects[c].dtype == object for c in objects.columns)
+    pd.testing.assert_frame_equal(make_table(schema, objects), typed, check_exact=True)

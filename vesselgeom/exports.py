@@ -10,7 +10,10 @@ the mask), on the input's own grid, header and affine.
 from __future__ import annotations
 
 import os
+import secrets
+from collections.abc import Callable
 from pathlib import Path
+from typing import TextIO
 from xml.sax.saxutils import quoteattr
 
 import nibabel as nib
@@ -20,14 +23,59 @@ from scipy.spatial import cKDTree
 
 __all__ = ["write_vtp", "branch_label_volume", "write_label_volume"]
 
+# values formatted and written at a time by write_vtp, so memory stays bounded for large tables
+_VTP_BLOCK = 65536
+
 
 def _fmt(values: np.ndarray, fmt: str) -> str:
+    """Text of ``values`` (any shape, flattened in C order), separated by single spaces.
+
+    Floats are written with the printf-style ``fmt`` and every non-finite value (NaN, +-inf) as
+    ``"nan"``; all other values as ``str(int(v))``. Float64 and integer arrays are formatted by one
+    ``%`` over the whole block and one ``str`` per Python int, which gives the same text as a
+    per-value loop, only faster.
+    """
     flat = np.asarray(values).ravel()
-    return (
-        " ".join(fmt % v if np.isfinite(v) else "nan" for v in flat)
-        if flat.dtype.kind == "f"
-        else " ".join(str(int(v)) for v in flat)
+    if flat.dtype.kind == "f":
+        if flat.dtype.itemsize > 8:  # long double: keep numpy's own scalars, value by value
+            return " ".join(fmt % v if np.isfinite(v) else "nan" for v in flat)
+        # NaN of either sign and +-inf all format as "nan" through "%" (Python float formatting)
+        finite = np.where(np.isfinite(flat), flat, np.nan).astype(np.float64, copy=False).tolist()
+        return " ".join([fmt] * len(finite)) % tuple(finite)
+    if flat.dtype.kind in "iu":
+        return " ".join(map(str, flat.tolist()))
+    if flat.dtype.kind == "b":
+        return " ".join(map(str, flat.astype(np.int64).tolist()))
+    return " ".join(str(int(v)) for v in flat)
+
+
+def _polylines(ids: np.ndarray, loops: set[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    # One polyline per run of equal sorted ids; runs of a loop branch with more than two points are
+    # closed by repeating their first point. Returns (connectivity, offsets, cell ids), all int64.
+    n = len(ids)
+    starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]]) if n else np.zeros(0, np.int64)
+    ends = np.r_[starts[1:], n].astype(np.int64) if n else np.zeros(0, np.int64)
+    cell_ids = ids[starts]
+    closed = np.isin(cell_ids, np.fromiter(loops, np.int64, len(loops))) & (ends - starts > 2)
+    conn = np.insert(np.arange(n, dtype=np.int64), ends[closed], starts[closed])
+    offsets = np.cumsum(ends - starts + closed, dtype=np.int64)
+    return conn, offsets, cell_ids.astype(np.int64, copy=False)
+
+
+def _write_array(
+    handle: TextIO, name: str, vtype: str, n: int, block: Callable[[int, int], np.ndarray], ncomp: int = 1
+) -> None:
+    # One ascii DataArray element on one line: n tuples of ncomp values, fetched and formatted
+    # block(start, stop) at a time (about _VTP_BLOCK values), separated by single spaces.
+    handle.write(
+        f'<DataArray type="{vtype}" Name={quoteattr(name)} NumberOfComponents="{ncomp}" format="ascii">'
     )
+    step = max(1, _VTP_BLOCK // ncomp)
+    for start in range(0, n, step):
+        if start:
+            handle.write(" ")
+        handle.write(_fmt(block(start, min(start + step, n)), "%.9g"))
+    handle.write("</DataArray>")
 
 
 def write_vtp(points: pd.DataFrame, branches: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
@@ -35,73 +83,76 @@ def write_vtp(points: pd.DataFrame, branches: pd.DataFrame, path: str | os.PathL
 
     Parameters
     ----------
-    points : DataFrame
-        Columns branch_id, arc_mm, x_mm, y_mm, z_mm, curvature_per_mm, torsion_per_mm, radius_mm.
-    branches : DataFrame
+    points : DataFrame, shape (n, ...)
+        Columns branch_id, arc_mm, x_mm, y_mm, z_mm (world mm), curvature_per_mm, torsion_per_mm
+        (1/mm), radius_mm (mm); rows of a branch in arc order.
+    branches : DataFrame, shape (m, ...)
         Columns branch_id and kind (loops are closed by repeating their first point).
     path : path
-        Destination ``.vtp`` file.
+        Destination ``.vtp`` file, replaced only once complete (temporary file in its folder, then
+        ``os.replace``; the temporary file is removed on any error).
+
+    Returns
+    -------
+    Path
+        ``path``.
+
+    Notes
+    -----
+    The text is streamed to the file: numbers are formatted ``_VTP_BLOCK`` at a time, so memory
+    beyond ``points`` stays bounded by one block plus the int64 index arrays (sort order, polyline
+    connectivity and offsets). Floats are written as ``"%.9g"``, non-finite values as ``"nan"``.
     """
     path = Path(path)
     loops = set(branches.loc[branches["kind"] == "loop", "branch_id"].astype(int))
     ids = points["branch_id"].to_numpy(int)
     order = np.argsort(ids, kind="stable")
     ids = ids[order]
-    starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]]) if len(ids) else np.zeros(0, int)
-    ends = np.r_[starts[1:], len(ids)] if len(ids) else np.zeros(0, int)
-    connectivity, offsets, cell_ids = [], [], []
-    count = 0
-    for s, e in zip(starts, ends, strict=True):
-        idx = np.arange(s, e)
-        if ids[s] in loops and len(idx) > 2:
-            idx = np.r_[idx, s]
-        connectivity.append(idx)
-        count += len(idx)
-        offsets.append(count)
-        cell_ids.append(ids[s])
-    conn = np.concatenate(connectivity) if connectivity else np.zeros(0, int)
-    xyz = points[["x_mm", "y_mm", "z_mm"]].to_numpy(float)[order]
+    conn, offsets, cell_ids = _polylines(ids, loops)
+    n = len(ids)
 
-    def arr(name, values, vtype, fmt="%.9g", ncomp=1):
-        return (
-            f'<DataArray type="{vtype}" Name={quoteattr(name)} NumberOfComponents="{ncomp}" '
-            f'format="ascii">{_fmt(values, fmt)}</DataArray>'
-        )
+    def column(name: str) -> Callable[[int, int], np.ndarray]:
+        values = points[name]
+        return lambda a, b: values.take(order[a:b]).to_numpy(float)
 
-    point_data = [
-        arr("branch_id", ids, "Int32"),
-        arr("arc_mm", points["arc_mm"].to_numpy(float)[order], "Float64"),
-        arr("curvature_per_mm", points["curvature_per_mm"].to_numpy(float)[order], "Float64"),
-        arr("torsion_per_mm", points["torsion_per_mm"].to_numpy(float)[order], "Float64"),
-        arr("radius_mm", points["radius_mm"].to_numpy(float)[order], "Float64"),
-    ]
-    text = "\n".join(
-        [
-            '<?xml version="1.0"?>',
-            '<VTKFile type="PolyData" version="1.0" byte_order="LittleEndian">',
-            "<PolyData>",
-            f'<Piece NumberOfPoints="{len(xyz)}" NumberOfVerts="0" NumberOfLines="{len(cell_ids)}" '
-            'NumberOfStrips="0" NumberOfPolys="0">',
-            '<PointData Scalars="curvature_per_mm">',
-            *point_data,
-            "</PointData>",
-            "<CellData>",
-            arr("branch_id", np.asarray(cell_ids, int), "Int32"),
-            "</CellData>",
-            "<Points>",
-            arr("Points", xyz, "Float64", ncomp=3),
-            "</Points>",
-            "<Lines>",
-            arr("connectivity", conn, "Int64"),
-            arr("offsets", np.asarray(offsets, int), "Int64"),
-            "</Lines>",
-            "</Piece>",
-            "</PolyData>",
-            "</VTKFile>",
-            "",
-        ]
-    )
-    path.write_text(text)
+    def xyz(a: int, b: int) -> np.ndarray:
+        # column by column: selecting the three columns as one frame would copy them whole
+        return np.column_stack([points[c].take(order[a:b]).to_numpy(float) for c in ("x_mm", "y_mm", "z_mm")])
+
+    def part(array: np.ndarray) -> Callable[[int, int], np.ndarray]:
+        return lambda a, b: array[a:b]
+
+    temp = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(6)}.tmp")
+    try:
+        # text mode with the platform's newline, as Path.write_text gave before; the text is ASCII
+        with open(temp, "x", encoding="utf-8") as handle:
+            handle.write(
+                '<?xml version="1.0"?>\n'
+                '<VTKFile type="PolyData" version="1.0" byte_order="LittleEndian">\n'
+                "<PolyData>\n"
+                f'<Piece NumberOfPoints="{n}" NumberOfVerts="0" NumberOfLines="{len(cell_ids)}" '
+                'NumberOfStrips="0" NumberOfPolys="0">\n'
+                '<PointData Scalars="curvature_per_mm">\n'
+            )
+            _write_array(handle, "branch_id", "Int32", n, part(ids))
+            for name in ("arc_mm", "curvature_per_mm", "torsion_per_mm", "radius_mm"):
+                handle.write("\n")
+                _write_array(handle, name, "Float64", n, column(name))
+            handle.write("\n</PointData>\n<CellData>\n")
+            _write_array(handle, "branch_id", "Int32", len(cell_ids), part(cell_ids))
+            handle.write("\n</CellData>\n<Points>\n")
+            _write_array(handle, "Points", "Float64", n, xyz, ncomp=3)
+            handle.write("\n</Points>\n<Lines>\n")
+            _write_array(handle, "connectivity", "Int64", len(conn), part(conn))
+            handle.write("\n")
+            _write_array(handle, "offsets", "Int64", len(offsets), part(offsets))
+            handle.write("\n</Lines>\n</Piece>\n</PolyData>\n</VTKFile>\n")
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(temp, path)
+    except BaseException:
+        temp.unlink(missing_ok=True)
+        raise
     return path
 
 

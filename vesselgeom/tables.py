@@ -25,7 +25,7 @@ from __future__ import annotations
 import csv
 import os
 import secrets
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -51,6 +51,8 @@ __all__ = [
 _DTYPES = ("int64", "Int64", "float64", "string", "bool")
 _FLOAT_FORMAT = "%.9g"
 _ARRAY = "<array>"
+# rows validated, cast and written at a time by write_csv, so memory stays bounded for large tables
+_CSV_BLOCK_ROWS = 65536
 
 
 @dataclass(frozen=True)
@@ -397,14 +399,19 @@ def write_csv(
     -----
     Columns are written in schema order, floats as ``"%.9g"``, missing values as empty fields,
     ``"\\n"`` line endings, UTF-8, without the index. The same table gives byte-identical files.
+    Rows are cast and written in blocks, so memory beyond ``df`` itself stays bounded (``df`` is
+    never copied whole); a value that does not fit, found in any block, leaves no file behind.
     """
     path = Path(path)
     if not isinstance(df, pd.DataFrame):
         raise InputError(f"{path}: expected a pandas DataFrame, got {type(df).__name__}")
     if schema is None:
         schema = _find_schema(df, path)
-    table = _build(schema, df, source=str(path))
-    _write_atomic(table, path)
+    source = str(path)
+    _check_schema(schema, source)
+    if len(df.columns):
+        _check_names(schema, [str(n) for n in df.columns], source)
+    _write_atomic(_typed_blocks(schema, df, source=source), path)
 
 
 def read_csv(path: str | os.PathLike[str], schema: tuple[Column, ...]) -> pd.DataFrame:
@@ -549,7 +556,8 @@ _KINDS = {
 
 def _cast(column: Column, values: Any, source: str, *, share: bool = False) -> Any:
     if isinstance(values, pd.Series | pd.Index):
-        values = values.array
+        # object columns as a plain array: infer_dtype reads pandas' wrapper of one as "unknown-array"
+        values = values.to_numpy() if values.dtype == object else values.array
     if isinstance(values, np.ndarray) and values.ndim == 1:
         # plain numeric arrays need no inference and no nullable round trip (at most one copy)
         kind = values.dtype.kind
@@ -606,7 +614,24 @@ def _read_header(path: Path) -> list[str]:
     return header
 
 
-def _write_atomic(table: pd.DataFrame, path: Path) -> None:
+def _typed_blocks(schema: tuple[Column, ...], df: pd.DataFrame, *, source: str) -> Iterator[pd.DataFrame]:
+    # Typed tables of _CSV_BLOCK_ROWS consecutive rows each (row slices of df are views); a zero-row
+    # df still gives one (empty) block, which carries the header.
+    step = _CSV_BLOCK_ROWS
+    for start in range(0, max(len(df), 1), step):
+        yield _build(schema, df.iloc[start : start + step], source=source)
+
+
+def _write_atomic(blocks: Iterator[pd.DataFrame], path: Path) -> None:
+    # The first block is cast before the temporary file exists, so a table whose first rows do not
+    # fit fails exactly as before, without touching the folder; later blocks are written as cast.
+    first: pd.DataFrame | None = next(blocks)
+    options: dict[str, Any] = {
+        "index": False,
+        "float_format": _FLOAT_FORMAT,
+        "na_rep": "",
+        "lineterminator": "\n",
+    }
     # A fresh name in the destination folder, so os.replace is an atomic rename on one file system;
     # os.open with mode 0o666 lets the process umask set permissions as for any ordinary new file.
     temp = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(6)}.tmp")
@@ -618,13 +643,10 @@ def _write_atomic(table: pd.DataFrame, path: Path) -> None:
         ) from exc
     try:
         with open(fd, "w", encoding="utf-8", newline="") as handle:
-            table.to_csv(
-                handle,
-                index=False,
-                float_format=_FLOAT_FORMAT,
-                na_rep="",
-                lineterminator="\n",
-            )
+            first.to_csv(handle, header=True, **options)
+            first = None  # one block in memory at a time
+            for table in blocks:
+                table.to_csv(handle, header=False, **options)
             handle.flush()
             os.fsync(handle.fileno())
         os.replace(temp, path)
