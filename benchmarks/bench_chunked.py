@@ -34,11 +34,52 @@ def _peak_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def _rss_mb() -> float:
+def _rss_mb(field: str = "VmRSS") -> float:
+    """A resident-memory field of /proc/self/status, MB: VmRSS (all), RssAnon (anonymous), RssFile."""
     for line in Path("/proc/self/status").read_text().splitlines():
-        if line.startswith("VmRSS:"):
+        if line.startswith(field + ":"):
             return float(line.split()[1]) / 1024
     return float("nan")
+
+
+class _Sampler:
+    """Samples VmRSS and RssAnon (MB) every ``every`` seconds in a thread: a timeline of (s, rss, anon)."""
+
+    def __init__(self, every: float = 0.1) -> None:
+        import threading
+
+        self.samples: list[tuple[float, float, float]] = []
+        self._t0 = time.perf_counter()
+        self._stop = threading.Event()
+        self._every = every
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            self.sample()
+            self._stop.wait(self._every)
+
+    def sample(self) -> None:
+        self.samples.append((time.perf_counter() - self._t0, _rss_mb("VmRSS"), _rss_mb("RssAnon")))
+
+    def peaks(self, bounds: dict[str, float]) -> dict[str, dict[str, float]]:
+        """Peak rss and anon per phase; ``bounds`` maps phase names to their end times (s), in order."""
+        out, lo = {}, -1.0
+        for name, hi in bounds.items():
+            inside = [s for s in self.samples if lo < s[0] <= hi]
+            if inside:
+                out[name] = {"rss_mb": max(s[1] for s in inside), "anon_mb": max(s[2] for s in inside)}
+            lo = hi
+        return out
+
+    def __enter__(self) -> _Sampler:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join()
+        self.sample()
 
 
 def network_tubes(shape, *, n_trees, depth, seed, r_max=6.0, r_min=1.5):
@@ -75,19 +116,39 @@ def write_network_zarr(path, shape, *, chunk, n_trees, depth, seed):
 
 
 def _child_large(path: str, budget: float, chunk: int) -> dict:
+    import tempfile
+
     import dask.threaded  # noqa: F401  (imported before the baseline, like the rest of the stack)
     import zarr  # noqa: F401
 
     from vesselgeom.chunked import analyze_chunked
     from vesselgeom.chunked import run as _run  # noqa: F401
 
-    base = _rss_mb()
-    t = time.perf_counter()
-    res = analyze_chunked(path, spacing=1.0, chunk_size=chunk, scheduler="threads", memory_budget_mb=budget)
+    base, base_anon = _rss_mb(), _rss_mb("RssAnon")
+    opts = dict(spacing=1.0, chunk_size=chunk, scheduler="threads", memory_budget_mb=budget)
+    with _Sampler() as sampler, tempfile.TemporaryDirectory(dir=Path(path).parent) as scratch:
+        t = time.perf_counter()
+        res = analyze_chunked(path, scratch_dir=scratch, **opts)
+        seconds = time.perf_counter() - t
+        t = time.perf_counter()
+        res.write(Path(scratch) / "out")
+        write_seconds = time.perf_counter() - t
+    ends, clock = {}, 0.0
+    timings = res.run["timings_seconds"]
+    for stage, sec in timings.items():
+        if stage != "measure":  # measuring runs inside the tracing stage's loop
+            clock += sec + (timings["measure"] if stage == "trace" else 0.0)
+            ends[stage] = clock
+    ends["analyze"] = seconds  # the rest: building the run record
+    ends["write"] = seconds + write_seconds + 1.0
     return {
-        "seconds": time.perf_counter() - t,
+        "seconds": seconds,
+        "write_seconds": write_seconds,
+        "points": len(res.points),
         "rss_after_imports_mb": base,
+        "anon_after_imports_mb": base_anon,
         "peak_rss_mb": _peak_mb(),
+        "peaks_by_stage_mb": sampler.peaks(ends),
         "branches": len(res.branches),
         "junctions": len(res.junctions),
         "total_length_mm": float(res.branches.length_mm.sum()),
@@ -177,13 +238,25 @@ def main(argv: list[str] | None = None) -> None:
         f"{gen:.0f} s), chunk {args.chunk}, threaded scheduler, budget {args.budget_mb:.0f} MB "
         f"(volume / budget = {volume_mb / args.budget_mb:.1f}).\n",
         "| time (s) | peak RSS (MB) | RSS after imports (MB) | peak - imports (MB) | budget (MB) "
-        "| branches | junctions | halo | tracing (ms/branch) | stage times (s) |",
-        "|---|---|---|---|---|---|---|---|---|---|",
+        "| branches | junctions | points | halo | tracing (ms/branch) | writing outputs (s) "
+        "| stage times (s) |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|",
         f"| {large['seconds']:.0f} | {large['peak_rss_mb']:.0f} | {large['rss_after_imports_mb']:.0f} "
         f"| {large['peak_rss_mb'] - large['rss_after_imports_mb']:.0f} | {args.budget_mb:.0f} "
-        f"| {large['branches']} | {large['junctions']} | {large['chunking']['halo']} "
+        f"| {large['branches']} | {large['junctions']} | {large['points']} | {large['chunking']['halo']} "
         f"| {1000 * large['timings']['trace'] / max(large['branches'], 1):.1f} "
-        f"| {json.dumps(large['timings'])} |\n",
+        f"| {large['write_seconds']:.0f} | {json.dumps(large['timings'])} |\n",
+        "Resident memory by stage, MB above the post-import baseline (sampled every 0.1 s): all resident "
+        "pages (VmRSS) and anonymous pages only (RssAnon; the rest are file-backed pages, such as the "
+        "memory-mapped points table, which the kernel can drop and read again).\n",
+        "| stage | VmRSS - baseline | RssAnon - baseline |",
+        "|---|---|---|",
+        *[
+            f"| {stage} | {p['rss_mb'] - large['rss_after_imports_mb']:.0f} "
+            f"| {p['anon_mb'] - large['anon_after_imports_mb']:.0f} |"
+            for stage, p in large["peaks_by_stage_mb"].items()
+        ],
+        "",
         f"Agreement on a {agree['size']}^3 network (chunk {agree['chunk']}): branches in memory / chunked "
         f"{agree['branches']}, junctions {agree['junctions']}, total length relative difference "
         f"{agree['total_length_rel_diff']:.2e}; median per-branch relative differences "
