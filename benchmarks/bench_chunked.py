@@ -28,6 +28,9 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
+#: The overhead beyond the budget stated in docs/chunked.md (anonymous memory of the whole process).
+OVERHEAD_FIXED_MB = 200.0
+OVERHEAD_PER_SKELETON_VOXEL = 150.0  # bytes
 
 
 def _peak_mb() -> float:
@@ -230,6 +233,11 @@ def main(argv: list[str] | None = None) -> None:
     print(json.dumps(large), flush=True)  # kept in the log even if the agreement step fails
     agree = _agreement(args.agree, 64)
     volume_mb = float(np.prod(shape)) / 2**20
+    skeleton = large["chunking"]["skeleton_voxels"]
+    bound = args.budget_mb + OVERHEAD_FIXED_MB + OVERHEAD_PER_SKELETON_VOXEL * skeleton / 2**20
+    anon_peak = (
+        max(p["anon_mb"] for p in large["peaks_by_stage_mb"].values()) - large["anon_after_imports_mb"]
+    )
     lines = [
         f"\n## {time.strftime('%Y-%m-%d')} — {platform.processor() or platform.machine()}, "
         f"{__import__('os').cpu_count()} cores, Python {platform.python_version()}\n",
@@ -257,6 +265,9 @@ def main(argv: list[str] | None = None) -> None:
             for stage, p in large["peaks_by_stage_mb"].items()
         ],
         "",
+        f"Stated overhead (docs/chunked.md): anonymous memory <= budget + {OVERHEAD_FIXED_MB:.0f} MB + "
+        f"{OVERHEAD_PER_SKELETON_VOXEL:.0f} B per skeleton voxel = {bound:.0f} MB above the baseline; "
+        f"measured {anon_peak:.0f} MB: {'within' if anon_peak <= bound else 'NOT within'} it.\n",
         f"Agreement on a {agree['size']}^3 network (chunk {agree['chunk']}): branches in memory / chunked "
         f"{agree['branches']}, junctions {agree['junctions']}, total length relative difference "
         f"{agree['total_length_rel_diff']:.2e}; median per-branch relative differences "

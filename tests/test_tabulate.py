@@ -142,3 +142,23 @@ def _is_mapped(values: np.ndarray) -> bool:
             return True
         values = getattr(values, "base", None)
     return False
+
+
+@pytest.mark.parametrize("typed_rows", [1, 2])
+def test_branch_rows_typed_in_blocks_give_the_same_tables(traced, monkeypatch, typed_rows):
+    # reference: every row typed at once at the end (a block larger than the table)
+    from vesselgeom import tabulate
+    from vesselgeom.tabulate import TableBuilder
+
+    lines, contexts, settings = traced
+    kw = dict(settings=settings, voxel_mm=1.0, coarsest_voxel_mm=1.0)
+    once = TableBuilder(**kw)
+    for lo in reversed(range(0, len(lines), 3)):
+        once.add_branches(lines[lo : lo + 3], contexts[lo : lo + 3])
+    monkeypatch.setattr(tabulate, "_TYPED_ROWS", typed_rows)
+    blocks = TableBuilder(**kw)
+    for lo in reversed(range(0, len(lines), 3)):
+        blocks.add_branches(lines[lo : lo + 3], contexts[lo : lo + 3])
+    assert len(blocks._branches) >= 2  # several typed blocks were made on the way
+    for x, y in zip(once.tables(by_branch_id=True), blocks.tables(by_branch_id=True), strict=True):
+        pd.testing.assert_frame_equal(x, y, check_exact=True)

@@ -11,13 +11,14 @@ Stages (each a set of Dask tasks unless noted):
 4. *trace*: groups of nearby branches of one component, each group read as one box
    (:mod:`vesselgeom.chunked.tracing`), a few groups per task;
 5. *measure* (in the client, while tracing runs): each task's centrelines go to
-   :class:`~vesselgeom.tabulate.TableBuilder` as the task finishes and are dropped; junction rows once
-   every branch is in; rows put in branch-id order at the end. The same tables as
-   :func:`vesselgeom.analyze`.
+   :class:`~vesselgeom.tabulate.TableBuilder` as the task finishes and are dropped, their point rows
+   to files in a scratch folder; junction rows once every branch is in; rows put in branch-id order
+   at the end, the points table mapped from its files. The same tables as :func:`vesselgeom.analyze`.
 
-The client holds the skeleton voxels (until tracing starts), the graph, the rows built so far and the
-results of at most :data:`~vesselgeom.chunked.scheduling.IN_FLIGHT_PER_WORKER` tasks per worker (in
-proportion to the skeleton and the output, not the volume); each task holds one box at a time.
+The client holds the skeleton voxels (until tracing starts), the graph, the branch and junction rows
+and the results of at most :data:`~vesselgeom.chunked.scheduling.IN_FLIGHT_PER_WORKER` tasks per worker
+(in proportion to the skeleton and the number of branches, not the volume or the output points); each
+task holds one box at a time.
 """
 
 from __future__ import annotations
@@ -180,7 +181,9 @@ def analyze_chunked(
         del voxels  # the plan holds what tracing and the tables need
         _return_freed_memory()
         tasks = _trace_tasks(plan, vol.affine, (chunk_size + 2 * halo) ** 3)
-        with tempfile.TemporaryDirectory(prefix="vesselgeom-points-", dir=scratch_dir) as spill:
+        with tempfile.TemporaryDirectory(
+            prefix="vesselgeom-points-", dir=scratch_dir, ignore_cleanup_errors=True
+        ) as spill:
             tables, measure_s = _trace_and_measure(
                 vol, comps, plan, tasks, radii, spacing_mm, settings, stream, spill
             )
