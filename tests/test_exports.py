@@ -288,3 +288,30 @@ def test_failed_vtp_write_leaves_no_file(tmp_path, monkeypatch):
         write_vtp(points, branches, path)
     assert path.read_text() == "old"  # the old file is untouched
     assert sorted(p.name for p in tmp_path.iterdir()) == ["c.vtp"]  # no temporary file is left
+
+
+def test_write_vtp_memory_does_not_grow_with_sorted_points(tmp_path, monkeypatch):
+    # rows in branch order (as both pipelines write them): beyond the table, write_vtp holds one block
+    # of values and per-branch arrays, so 4x the points (same points per branch) must not need 4x memory
+    import tracemalloc
+
+    import vesselgeom.exports as exports
+
+    monkeypatch.setattr(exports, "_VTP_BLOCK", 4096)
+
+    def peak(n: int) -> int:
+        rng = np.random.default_rng(n)
+        names = ("arc_mm", "x_mm", "y_mm", "z_mm", "curvature_per_mm", "torsion_per_mm", "radius_mm")
+        points = pd.DataFrame({"branch_id": np.repeat(np.arange(1, n // 100 + 1), 100)})
+        for name in names:
+            points[name] = rng.random(n)
+        branches = pd.DataFrame({"branch_id": np.arange(1, n // 100 + 1), "kind": "internal"})
+        tracemalloc.start()
+        try:
+            write_vtp(points, branches, tmp_path / f"p{n}.vtp")
+            return tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+
+    small, large = peak(40_000), peak(160_000)
+    assert large < 1.3 * small, (small, large)

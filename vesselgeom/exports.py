@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import os
 import secrets
-from collections.abc import Callable
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import TextIO
 from xml.sax.saxutils import quoteattr
@@ -49,33 +49,51 @@ def _fmt(values: np.ndarray, fmt: str) -> str:
     return " ".join(str(int(v)) for v in flat)
 
 
-def _polylines(ids: np.ndarray, loops: set[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _polylines(ids: np.ndarray, loops: set[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     # One polyline per run of equal sorted ids; runs of a loop branch with more than two points are
-    # closed by repeating their first point. Returns (connectivity, offsets, cell ids), all int64.
+    # closed by repeating their first point. Returns (starts, ends, closed, cell ids) per polyline:
+    # arrays of the number of branches, not of points.
     n = len(ids)
     starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]]) if n else np.zeros(0, np.int64)
     ends = np.r_[starts[1:], n].astype(np.int64) if n else np.zeros(0, np.int64)
-    cell_ids = ids[starts]
+    cell_ids = ids[starts].astype(np.int64)
     closed = np.isin(cell_ids, np.fromiter(loops, np.int64, len(loops))) & (ends - starts > 2)
-    conn = np.insert(np.arange(n, dtype=np.int64), ends[closed], starts[closed])
-    offsets = np.cumsum(ends - starts + closed, dtype=np.int64)
-    return conn, offsets, cell_ids.astype(np.int64, copy=False)
+    return starts.astype(np.int64), ends, closed, cell_ids
 
 
-def _write_array(
-    handle: TextIO, name: str, vtype: str, n: int, block: Callable[[int, int], np.ndarray], ncomp: int = 1
-) -> None:
-    # One ascii DataArray element on one line: n tuples of ncomp values, fetched and formatted
-    # block(start, stop) at a time (about _VTP_BLOCK values), separated by single spaces.
+def _connectivity(starts: np.ndarray, ends: np.ndarray, closed: np.ndarray) -> Iterator[np.ndarray]:
+    # The polylines' point indices (0..n-1, each closed one followed by its first index again), about
+    # _VTP_BLOCK at a time: whole polylines per block, so memory follows the block, not the table.
+    i, m = 0, len(starts)
+    while i < m:
+        j = max(int(np.searchsorted(ends, starts[i] + _VTP_BLOCK, side="right")), i + 1)
+        ids = np.arange(starts[i], ends[j - 1], dtype=np.int64)
+        shut = np.flatnonzero(closed[i:j]) + i
+        yield np.insert(ids, ends[shut] - starts[i], starts[shut])
+        i = j
+
+
+def _write_array(handle: TextIO, name: str, vtype: str, blocks: Iterable[np.ndarray], ncomp: int = 1) -> None:
+    # One ascii DataArray element on one line: the values of the blocks, formatted block by block,
+    # separated by single spaces.
     handle.write(
         f'<DataArray type="{vtype}" Name={quoteattr(name)} NumberOfComponents="{ncomp}" format="ascii">'
     )
+    first = True
+    for block in blocks:
+        if not block.size:
+            continue
+        if not first:
+            handle.write(" ")
+        handle.write(_fmt(block, "%.9g"))
+        first = False
+    handle.write("</DataArray>")
+
+
+def _blocks(n: int, block: Callable[[int, int], np.ndarray], ncomp: int = 1) -> Iterator[np.ndarray]:
     step = max(1, _VTP_BLOCK // ncomp)
     for start in range(0, n, step):
-        if start:
-            handle.write(" ")
-        handle.write(_fmt(block(start, min(start + step, n)), "%.9g"))
-    handle.write("</DataArray>")
+        yield block(start, min(start + step, n))
 
 
 def write_vtp(points: pd.DataFrame, branches: pd.DataFrame, path: str | os.PathLike[str]) -> Path:
@@ -100,24 +118,32 @@ def write_vtp(points: pd.DataFrame, branches: pd.DataFrame, path: str | os.PathL
     Notes
     -----
     The text is streamed to the file: numbers are formatted ``_VTP_BLOCK`` at a time, so memory
-    beyond ``points`` stays bounded by one block plus the int64 index arrays (sort order, polyline
-    connectivity and offsets). Floats are written as ``"%.9g"``, non-finite values as ``"nan"``.
+    beyond ``points`` stays bounded by one block plus per-branch arrays (polyline starts, ends and
+    offsets); rows not in branch order cost a sort order as well (8 bytes per point). Floats are
+    written as ``"%.9g"``, non-finite values as ``"nan"``.
     """
     path = Path(path)
     loops = set(branches.loc[branches["kind"] == "loop", "branch_id"].astype(int))
-    ids = points["branch_id"].to_numpy(int)
-    order = np.argsort(ids, kind="stable")
-    ids = ids[order]
-    conn, offsets, cell_ids = _polylines(ids, loops)
+    ids = points["branch_id"].to_numpy(np.int64)
+    order = None  # rows already in branch order (both pipelines write them so): no index array at all
+    if len(ids) and np.any(ids[1:] < ids[:-1]):
+        order = np.argsort(ids, kind="stable")
+        ids = ids[order]
+    starts, ends, closed, cell_ids = _polylines(ids, loops)
+    offsets = np.cumsum(ends - starts + closed, dtype=np.int64)
     n = len(ids)
 
-    def column(name: str) -> Callable[[int, int], np.ndarray]:
+    def rows(name: str, a: int, b: int) -> np.ndarray:
         values = points[name]
-        return lambda a, b: values.take(order[a:b]).to_numpy(float)
+        picked = values.iloc[a:b] if order is None else values.take(order[a:b])
+        return picked.to_numpy(float)
+
+    def column(name: str) -> Callable[[int, int], np.ndarray]:
+        return lambda a, b: rows(name, a, b)
 
     def xyz(a: int, b: int) -> np.ndarray:
         # column by column: selecting the three columns as one frame would copy them whole
-        return np.column_stack([points[c].take(order[a:b]).to_numpy(float) for c in ("x_mm", "y_mm", "z_mm")])
+        return np.column_stack([rows(c, a, b) for c in ("x_mm", "y_mm", "z_mm")])
 
     def part(array: np.ndarray) -> Callable[[int, int], np.ndarray]:
         return lambda a, b: array[a:b]
@@ -134,18 +160,18 @@ def write_vtp(points: pd.DataFrame, branches: pd.DataFrame, path: str | os.PathL
                 'NumberOfStrips="0" NumberOfPolys="0">\n'
                 '<PointData Scalars="curvature_per_mm">\n'
             )
-            _write_array(handle, "branch_id", "Int32", n, part(ids))
+            _write_array(handle, "branch_id", "Int32", _blocks(n, part(ids)))
             for name in ("arc_mm", "curvature_per_mm", "torsion_per_mm", "radius_mm"):
                 handle.write("\n")
-                _write_array(handle, name, "Float64", n, column(name))
+                _write_array(handle, name, "Float64", _blocks(n, column(name)))
             handle.write("\n</PointData>\n<CellData>\n")
-            _write_array(handle, "branch_id", "Int32", len(cell_ids), part(cell_ids))
+            _write_array(handle, "branch_id", "Int32", _blocks(len(cell_ids), part(cell_ids)))
             handle.write("\n</CellData>\n<Points>\n")
-            _write_array(handle, "Points", "Float64", n, xyz, ncomp=3)
+            _write_array(handle, "Points", "Float64", _blocks(n, xyz, 3), ncomp=3)
             handle.write("\n</Points>\n<Lines>\n")
-            _write_array(handle, "connectivity", "Int64", len(conn), part(conn))
+            _write_array(handle, "connectivity", "Int64", _connectivity(starts, ends, closed))
             handle.write("\n")
-            _write_array(handle, "offsets", "Int64", len(offsets), part(offsets))
+            _write_array(handle, "offsets", "Int64", _blocks(len(offsets), part(offsets)))
             handle.write("\n</Lines>\n</Piece>\n</PolyData>\n</VTKFile>\n")
             handle.flush()
             os.fsync(handle.fileno())

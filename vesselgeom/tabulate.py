@@ -67,11 +67,18 @@ class TableBuilder:
         self._junctions: list[dict] = []
         self._dirs = np.full((0, 2, 3), np.nan)  # row = branch id: directions away from start, end
         self._traced = np.zeros(0, bool)
+        self._known = np.zeros(0, bool)
+        self._done = False
 
     def add_branches(self, lines: Sequence[Centerline | None], contexts: Sequence[BranchContext]) -> None:
         """Measure a batch of traced branches (None where tracing failed); the lines may then be dropped."""
+        if self._done:
+            raise InputError("<array>: branches added after the tables were made; use a new TableBuilder")
         if not len(lines):
             return
+        ids = np.array([c.branch_id for c in contexts], np.int64)
+        if ids.min() < 0:
+            raise InputError(f"<array>: branch ids must be non-negative, got {int(ids.min())}")
         columns = branch_columns(
             lines,
             contexts,
@@ -89,13 +96,12 @@ class TableBuilder:
         else:
             self._spilled.add(points)
         del points
-        ids = np.array([c.branch_id for c in contexts], np.int64)
-        if ids.min() < 0:
-            raise InputError(f"<array>: branch ids must be non-negative, got {int(ids.min())}")
         if ids.max() >= len(self._dirs):
             grow = max(int(ids.max()) + 1, 2 * len(self._dirs))
             self._dirs = np.concatenate([self._dirs, np.full((grow - len(self._dirs), 2, 3), np.nan)])
             self._traced = np.concatenate([self._traced, np.zeros(grow - len(self._traced), bool)])
+            self._known = np.concatenate([self._known, np.zeros(grow - len(self._known), bool)])
+        self._known[ids] = True
         for cl, bid in zip(lines, ids.tolist(), strict=True):
             if cl is not None:
                 self._dirs[bid] = end_directions(cl, settings=self._settings)
@@ -112,7 +118,9 @@ class TableBuilder:
         """Add a junction row; ``ends`` lists (branch_id, at_start) of every branch end at the node."""
         dirs = []
         for bid, at_start in ends:
-            traced = bid < len(self._traced) and self._traced[bid]
+            if not 0 <= bid < len(self._known) or not self._known[bid]:
+                raise InputError(f"<array>: junction {node_id} names branch {bid}, which was not added")
+            traced = self._traced[bid]
             dirs.append((bid, self._dirs[bid, 0 if at_start else 1].copy() if traced else None))
         self._junctions.append(junction_row(node_id, component_id, position_mm, radius_mm, dirs))
 
@@ -123,6 +131,9 @@ class TableBuilder:
         their order) when batches were added out of order (chunked tracing). Call once: the collected
         point columns are handed over to the table, one column at a time.
         """
+        if self._done:
+            raise InputError("<array>: tables() was already called on this TableBuilder; call it once")
+        self._done = True
         branches = make_table(BRANCH_COLUMNS)
         self._type_pending()
         if self._branches:
@@ -150,7 +161,8 @@ class TableBuilder:
         self._pending, self._pending_rows = [], 0
 
     def discard(self) -> None:
-        """Remove spilled point files (when the run fails before :meth:`tables`)."""
+        """Close the spilled point files, freeing their disk space (when a run fails before its tables)."""
+        self._done = True
         if self._spilled is not None:
             self._spilled.discard()
 

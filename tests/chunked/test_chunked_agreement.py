@@ -9,6 +9,8 @@ branches matched by their nearest start/end points).
 from __future__ import annotations
 
 import json
+import os
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -191,3 +193,28 @@ def test_missing_scratch_folder_is_an_input_error(tmp_path):
             scheduler="synchronous",
             scratch_dir=tmp_path / "no",
         )
+
+
+def test_a_failing_run_leaves_no_point_files_open(tmp_path, monkeypatch):
+    from vesselgeom.chunked import run
+
+    def fail(*args, **kwargs):
+        raise RuntimeError("stop after tracing")
+
+    monkeypatch.setattr(run, "_add_junctions", fail)
+    ph = PHANTOMS["y"]()
+    # the traceback is kept alive (as an interactive session keeps the last one), and with it the frames
+    with pytest.raises(RuntimeError, match="stop after tracing") as failure:
+        analyze_chunked(_lazy(ph), chunk_size=24, scheduler="synchronous", scratch_dir=tmp_path)
+    assert failure.tb is not None
+    assert list(tmp_path.iterdir()) == []
+    fds = [os.readlink(fd) for fd in Path("/proc/self/fd").iterdir() if _readable_link(fd)]
+    assert not [f for f in fds if f.startswith(str(tmp_path) + "/")]  # closed, even with the traceback alive
+
+
+def _readable_link(fd) -> bool:
+    try:
+        os.readlink(fd)
+    except OSError:
+        return False
+    return True

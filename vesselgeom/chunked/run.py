@@ -28,6 +28,7 @@ import os
 import platform
 import tempfile
 import time
+import warnings
 from collections.abc import Callable
 from typing import Any
 
@@ -47,11 +48,12 @@ from vesselgeom.chunked.thinning import (
     thin_chunk,
 )
 from vesselgeom.chunked.tracing import BranchJob, branch_boxes, group_branches, trace_groups
-from vesselgeom.errors import InputError
+from vesselgeom.errors import InputError, VesselgeomWarning
 from vesselgeom.graph import prune_spurs
 from vesselgeom.io.affine import orientation, voxel_sizes, voxel_volume
 from vesselgeom.measure import BranchContext
 from vesselgeom.pipeline import CAUTION, Result, derived_values, free_end_at_edge
+from vesselgeom.pointstore import check_folder, in_memory_folder
 from vesselgeom.settings import Settings
 from vesselgeom.tabulate import TableBuilder
 
@@ -101,10 +103,11 @@ def analyze_chunked(
     spacing : float or 3 floats, mm, optional
         Voxel size for plain Zarr arrays and in-memory arrays.
     scratch_dir : path, optional
-        An existing folder on a disk with room for twice the points table (89 bytes per output point):
-        point rows are written there as tasks finish (:class:`~vesselgeom.pointstore.SpilledPoints`),
-        in a temporary sub-folder that is removed before returning. Default: the system's temporary
-        folder (``TMPDIR``).
+        An existing, writable folder on a disk with room for twice the points table (89 bytes per
+        output point): point rows are written there as tasks finish, in anonymous files that leave
+        nothing behind (:class:`~vesselgeom.pointstore.SpilledPoints`); their space is in use while the
+        returned points table is alive. Default: the system's temporary folder (``TMPDIR``); a warning
+        is given when the folder is on a memory file system (tmpfs).
 
     Returns
     -------
@@ -112,7 +115,7 @@ def analyze_chunked(
         The same tables as :func:`vesselgeom.analyze`; ``run["mode"] == "chunked"`` and
         ``run["chunking"]`` records chunk size, halo, depth, chunk count, scheduler and budget.
         ``volume`` is None (no whole mask exists), so ``Result.write`` skips the label volume and qc.png.
-        ``points`` is memory-mapped from an unlinked file (copy-on-write), not held in memory.
+        ``points`` is memory-mapped (copy-on-write) from an anonymous file, not held in memory.
     """
     settings = (settings or Settings()).replace(**overrides) if overrides else settings or Settings()
     if not isinstance(chunk_size, int | np.integer) or chunk_size < 8:
@@ -121,8 +124,15 @@ def analyze_chunked(
         raise InputError(f"<chunked>: halo must be a positive integer (voxels), got {halo!r}")
     if memory_budget_mb is not None and not memory_budget_mb > 0:
         raise InputError(f"<chunked>: memory_budget_mb must be positive, got {memory_budget_mb!r}")
-    if scratch_dir is not None and not os.path.isdir(scratch_dir):
-        raise InputError(f"{scratch_dir}: scratch folder does not exist; create it or pass another")
+    scratch = os.fspath(scratch_dir) if scratch_dir is not None else tempfile.gettempdir()
+    check_folder(scratch)  # before hours of work, not after
+    scratch_note = None
+    if in_memory_folder(scratch):
+        scratch_note = (
+            f"scratch folder {scratch} is on a memory file system (tmpfs): the point rows (89 bytes "
+            "each) are kept in memory; pass scratch_dir / --scratch on a disk"
+        )
+        warnings.warn(f"<chunked>: {scratch_note}", VesselgeomWarning, stacklevel=2)
     t0 = time.perf_counter()
     vol = open_lazy(source, spacing=spacing, label=settings.label, threshold=settings.threshold)
     timings = {"open": time.perf_counter() - t0}
@@ -181,19 +191,16 @@ def analyze_chunked(
         del voxels  # the plan holds what tracing and the tables need
         _return_freed_memory()
         tasks = _trace_tasks(plan, vol.affine, (chunk_size + 2 * halo) ** 3)
-        with tempfile.TemporaryDirectory(
-            prefix="vesselgeom-points-", dir=scratch_dir, ignore_cleanup_errors=True
-        ) as spill:
-            tables, measure_s = _trace_and_measure(
-                vol, comps, plan, tasks, radii, spacing_mm, settings, stream, spill
-            )
+        tables, measure_s = _trace_and_measure(
+            vol, comps, plan, tasks, radii, spacing_mm, settings, stream, scratch
+        )
         timings["trace"] = time.perf_counter() - t - measure_s
         timings["measure"] = measure_s
         del plan, tasks
         _return_freed_memory()
 
-    notes = list(vol.warnings)
     branches, points, junctions = tables
+    notes = list(vol.warnings) + ([scratch_note] if scratch_note else [])
     run = {
         "software": "vesselgeom",
         "version": __version__,
@@ -405,8 +412,8 @@ def _trace_and_measure(
     Rows are built as :func:`vesselgeom.pipeline.analyze_volume` builds them (``TableBuilder``): each
     task's centrelines are measured and dropped as soon as the task is collected (in whatever order the
     tasks finish), junctions are added once every branch is in, and the branch and point rows are put
-    in branch-id order at the end; point rows go to files in ``spill_dir``, and the points table is
-    mapped from them. Returns the three tables and the seconds spent measuring.
+    in branch-id order at the end; point rows go to anonymous files in ``spill_dir``, and the points
+    table is mapped from them. Returns the three tables and the seconds spent measuring.
     """
     builder = TableBuilder(
         settings=settings,
@@ -417,17 +424,21 @@ def _trace_and_measure(
     measure_s = 0.0
     voxel_mm = float(np.mean(spacing_mm))
     calls = (([[plan[i][2] for i in group] for group in task],) for task in tasks)
-    for k, traced in stream(trace_groups, vol, calls, voxel_mm=voxel_mm, settings=settings):
+    try:
+        for k, traced in stream(trace_groups, vol, calls, voxel_mm=voxel_mm, settings=settings):
+            t = time.perf_counter()
+            order = np.concatenate(tasks[k])
+            lines = [cl for group in traced for cl in group]
+            del traced
+            builder.add_branches(lines, [plan[i][1] for i in order.tolist()])
+            del lines
+            measure_s += time.perf_counter() - t
         t = time.perf_counter()
-        order = np.concatenate(tasks[k])
-        lines = [cl for group in traced for cl in group]
-        del traced
-        builder.add_branches(lines, [plan[i][1] for i in order.tolist()])
-        del lines
-        measure_s += time.perf_counter() - t
-    t = time.perf_counter()
-    _add_junctions(builder, comps, plan, radii, vol.affine)
-    tables = builder.tables(by_branch_id=True)  # tasks finish in spatial order, not branch order
+        _add_junctions(builder, comps, plan, radii, vol.affine)
+        tables = builder.tables(by_branch_id=True)  # tasks finish in spatial order, not branch order
+    except BaseException:
+        builder.discard()  # the point files' disk space is freed now, not when the traceback goes
+        raise
     del builder
     return tables, measure_s + time.perf_counter() - t
 
