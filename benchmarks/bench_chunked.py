@@ -37,36 +37,44 @@ def _peak_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def _rss_mb(field: str = "VmRSS") -> float:
-    """A resident-memory field of /proc/self/status, MB: VmRSS (all), RssAnon (anonymous), RssFile."""
-    for line in Path("/proc/self/status").read_text().splitlines():
+def _rss_mb(field: str = "VmRSS", pid: int | str = "self") -> float:
+    """A resident-memory field of /proc/PID/status, MB: VmRSS (all), RssAnon (anonymous), RssFile."""
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
         if line.startswith(field + ":"):
             return float(line.split()[1]) / 1024
     return float("nan")
 
 
+def _sample_loop(pid: int, out: str, every: float) -> None:
+    """Write (wall time, VmRSS, RssAnon) of process ``pid`` to ``out`` every ``every`` s until it ends."""
+    with open(out, "w") as fh:
+        while True:
+            try:
+                rss, anon = _rss_mb("VmRSS", pid), _rss_mb("RssAnon", pid)
+            except OSError:  # the process has ended
+                return
+            fh.write(f"{time.time()} {rss} {anon}\n")
+            fh.flush()
+            time.sleep(every)
+
+
 class _Sampler:
-    """Samples VmRSS and RssAnon (MB) every ``every`` seconds in a thread: a timeline of (s, rss, anon)."""
+    """Samples this process's VmRSS and RssAnon (MB) from a separate process every ``every`` seconds.
 
-    def __init__(self, every: float = 0.1) -> None:
-        import threading
+    A separate process, because a sampling thread would wait for the GIL while thinning holds it and
+    miss short peaks. Gives a timeline of (wall time, rss, anon).
+    """
 
-        self.samples: list[tuple[float, float, float]] = []
-        self._t0 = time.perf_counter()
-        self._stop = threading.Event()
+    def __init__(self, every: float = 0.02) -> None:
+        import tempfile
+
+        self._file = tempfile.NamedTemporaryFile(suffix=".samples", delete=False)  # noqa: SIM115
+        self._file.close()
         self._every = every
-        self._thread = threading.Thread(target=self._run, daemon=True)
-
-    def _run(self) -> None:
-        while not self._stop.is_set():
-            self.sample()
-            self._stop.wait(self._every)
-
-    def sample(self) -> None:
-        self.samples.append((time.perf_counter() - self._t0, _rss_mb("VmRSS"), _rss_mb("RssAnon")))
+        self.samples: list[tuple[float, float, float]] = []
 
     def peaks(self, bounds: dict[str, float]) -> dict[str, dict[str, float]]:
-        """Peak rss and anon per phase; ``bounds`` maps phase names to their end times (s), in order."""
+        """Peak rss and anon per phase; ``bounds`` maps phase names to their end times (wall s), in order."""
         out, lo = {}, -1.0
         for name, hi in bounds.items():
             inside = [s for s in self.samples if lo < s[0] <= hi]
@@ -76,13 +84,21 @@ class _Sampler:
         return out
 
     def __enter__(self) -> _Sampler:
-        self._thread.start()
+        import os
+
+        self._proc = subprocess.Popen(
+            [sys.executable, __file__, "--sample", str(os.getpid()), self._file.name, str(self._every)]
+        )
+        time.sleep(0.5)  # started before the work it watches
         return self
 
     def __exit__(self, *exc) -> None:
-        self._stop.set()
-        self._thread.join()
-        self.sample()
+        time.sleep(0.2)
+        self._proc.terminate()
+        self._proc.wait()
+        text = Path(self._file.name).read_text()
+        Path(self._file.name).unlink()
+        self.samples = [tuple(map(float, line.split())) for line in text.splitlines() if line.count(" ") == 2]
 
 
 def network_tubes(shape, *, n_trees, depth, seed, r_max=6.0, r_min=1.5):
@@ -130,20 +146,21 @@ def _child_large(path: str, budget: float, chunk: int) -> dict:
     base, base_anon = _rss_mb(), _rss_mb("RssAnon")
     opts = dict(spacing=1.0, chunk_size=chunk, scheduler="threads", memory_budget_mb=budget)
     with _Sampler() as sampler, tempfile.TemporaryDirectory(dir=Path(path).parent) as scratch:
+        start = time.time()
         t = time.perf_counter()
         res = analyze_chunked(path, scratch_dir=scratch, **opts)
         seconds = time.perf_counter() - t
         t = time.perf_counter()
         res.write(Path(scratch) / "out")
         write_seconds = time.perf_counter() - t
-    ends, clock = {}, 0.0
+    ends, clock = {}, start
     timings = res.run["timings_seconds"]
     for stage, sec in timings.items():
         if stage != "measure":  # measuring runs inside the tracing stage's loop
             clock += sec + (timings["measure"] if stage == "trace" else 0.0)
             ends[stage] = clock
-    ends["analyze"] = seconds  # the rest: building the run record
-    ends["write"] = seconds + write_seconds + 1.0
+    ends["analyze"] = start + seconds  # the rest: building the run record
+    ends["write"] = start + seconds + write_seconds + 1.0
     return {
         "seconds": seconds,
         "write_seconds": write_seconds,
@@ -213,7 +230,11 @@ def main(argv: list[str] | None = None) -> None:
         "--reuse-zarr", action="store_true", help="analyse an existing --zarr of this size (skip writing it)"
     )
     ap.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
+    ap.add_argument("--sample", nargs=3, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    if args.sample:
+        _sample_loop(int(args.sample[0]), args.sample[1], float(args.sample[2]))
+        return
     if args.child:
         print(json.dumps(_child_large(args.child[0], float(args.child[1]), int(args.child[2]))))
         return
@@ -254,7 +275,8 @@ def main(argv: list[str] | None = None) -> None:
         f"| {large['branches']} | {large['junctions']} | {large['points']} | {large['chunking']['halo']} "
         f"| {1000 * large['timings']['trace'] / max(large['branches'], 1):.1f} "
         f"| {large['write_seconds']:.0f} | {json.dumps(large['timings'])} |\n",
-        "Resident memory by stage, MB above the post-import baseline (sampled every 0.1 s): all resident "
+        "Resident memory by stage, MB above the post-import baseline (sampled every 0.02 s by a separate "
+        "process): all resident "
         "pages (VmRSS) and anonymous pages only (RssAnon; the rest are file-backed pages, such as the "
         "memory-mapped points table, which the kernel can drop and read again).\n",
         "| stage | VmRSS - baseline | RssAnon - baseline |",
