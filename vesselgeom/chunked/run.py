@@ -23,7 +23,6 @@ task holds one box at a time.
 
 from __future__ import annotations
 
-import ctypes
 import os
 import platform
 import tempfile
@@ -36,6 +35,7 @@ import numpy as np
 import pandas as pd
 
 from vesselgeom import __version__
+from vesselgeom.chunked.allocator import prefer_mmap, return_freed_memory
 from vesselgeom.chunked.scheduling import PROCESS_OVERHEAD_MB, delayed, executor, shared
 from vesselgeom.chunked.sources import LazyVolume, open_lazy
 from vesselgeom.chunked.stitch import SkeletonVoxels, branch_max_radius, junction_radii, split_components
@@ -126,6 +126,7 @@ def analyze_chunked(
         raise InputError(f"<chunked>: memory_budget_mb must be positive, got {memory_budget_mb!r}")
     scratch = os.fspath(scratch_dir) if scratch_dir is not None else tempfile.gettempdir()
     check_folder(scratch)  # before hours of work, not after
+    prefer_mmap()  # freed boxes go back to the system (vesselgeom.chunked.allocator)
     scratch_note = None
     if in_memory_folder(scratch):
         scratch_note = (
@@ -169,7 +170,7 @@ def analyze_chunked(
         )
         voxels = SkeletonVoxels.union(parts, vol.shape)
         del parts
-        _return_freed_memory()
+        return_freed_memory()
         timings["thin"] = time.perf_counter() - t
 
         t = time.perf_counter()
@@ -189,7 +190,7 @@ def analyze_chunked(
         plan = _plan(comps, voxels, spacing_mm)
         n_skeleton = len(voxels.coords)
         del voxels  # the plan holds what tracing and the tables need
-        _return_freed_memory()
+        return_freed_memory()
         tasks = _trace_tasks(plan, vol.affine, (chunk_size + 2 * halo) ** 3)
         tables, measure_s = _trace_and_measure(
             vol, comps, plan, tasks, radii, spacing_mm, settings, stream, scratch
@@ -197,7 +198,7 @@ def analyze_chunked(
         timings["trace"] = time.perf_counter() - t - measure_s
         timings["measure"] = measure_s
         del plan, tasks
-        _return_freed_memory()
+        return_freed_memory()
 
     branches, points, junctions = tables
     notes = list(vol.warnings) + ([scratch_note] if scratch_note else [])
@@ -464,15 +465,3 @@ def _add_junctions(
             pos = node.position @ affine[:3, :3].T + affine[:3, 3]
             radius = radii[tuple(node.position.tolist())]
             builder.add_junction(comp.node_ids[nid], comp.component_id, pos, radius, ends_at.get(nid, []))
-
-
-def _return_freed_memory() -> None:
-    """Ask the C allocator to return freed memory to the system (glibc ``malloc_trim``; else nothing).
-
-    The stages free hundreds of MB in many mid-sized blocks (task results, skeleton voxels) that glibc
-    keeps in its arenas, so without this the client's resident memory stays at its high-water mark.
-    """
-    try:
-        ctypes.CDLL("libc.so.6").malloc_trim(0)
-    except (OSError, AttributeError):  # not glibc
-        pass

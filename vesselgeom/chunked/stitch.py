@@ -16,6 +16,7 @@ from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
 from vesselgeom import labelling
+from vesselgeom.chunked.allocator import prefer_mmap
 from vesselgeom.chunked.sources import LazyVolume
 from vesselgeom.graph import Branch, SkeletonGraph, build_graph_from_coords
 from vesselgeom.radius import BoundaryDistance
@@ -147,6 +148,7 @@ def junction_radii(
     so each point's nearest background voxel lies inside); :class:`vesselgeom.radius.BoundaryDistance` is
     built on it as on a component's crop in memory.
     """
+    prefer_mmap()  # also in worker processes of a distributed cluster
     positions = np.asarray(positions, float).reshape(-1, 3)
     margins = np.asarray(margins, int).reshape(-1)
     lo = np.floor((positions - margins[:, None]).min(axis=0)).astype(int)

@@ -20,6 +20,7 @@ import numpy as np
 from scipy import ndimage
 
 from vesselgeom import labelling
+from vesselgeom.chunked.allocator import prefer_mmap
 from vesselgeom.chunked.sources import LazyVolume
 from vesselgeom.radius import BoundaryDistance
 from vesselgeom.skeleton import thin
@@ -100,6 +101,7 @@ def survey_chunk(vol: LazyVolume, lo: np.ndarray, hi: np.ndarray, *, probe: int,
     1 from the background), which needs only boolean arrays. Depths up to ``probe`` are exact: the box's
     edge is farther than that from every core voxel.
     """
+    prefer_mmap()  # also in worker processes of a distributed cluster
     lo, hi = np.asarray(lo), np.asarray(hi)
     m, blo = _read(vol, lo - probe, hi + probe)
     core = tuple(slice(int(a - o), int(b - o)) for a, b, o in zip(lo, hi, blo, strict=True))
@@ -153,6 +155,7 @@ def thin_chunk(
     in-memory pipeline drops them); a component reaching the box's edge is larger than the box can show
     and is kept.
     """
+    prefer_mmap()  # also in worker processes of a distributed cluster
     lo, hi = np.asarray(lo), np.asarray(hi)
     m, blo = _read(vol, lo - halo, hi + halo)
     core = tuple(slice(int(a - o), int(b - o)) for a, b, o in zip(lo, hi, blo, strict=True))

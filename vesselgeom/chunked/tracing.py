@@ -27,6 +27,7 @@ from scipy import ndimage
 
 from vesselgeom import labelling
 from vesselgeom.centerline import BranchInput, Centerline, trace_centerlines
+from vesselgeom.chunked.allocator import prefer_mmap
 from vesselgeom.chunked.sources import LazyVolume
 from vesselgeom.crosssection import CrossSection, single_threaded
 from vesselgeom.radius import BoundaryDistance
@@ -206,5 +207,6 @@ def trace_groups(
 
     Single-threaded inside (the tasks themselves run in parallel, one per core).
     """
+    prefer_mmap()  # also in worker processes of a distributed cluster
     with single_threaded():
         return [trace_group(vol, jobs, voxel_mm=voxel_mm, settings=settings) for jobs in groups]
