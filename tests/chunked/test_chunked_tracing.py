@@ -9,6 +9,7 @@ centrelines; :func:`vesselgeom.analyze` for the tables.
 
 from __future__ import annotations
 
+import contextlib
 import gc
 import weakref
 
@@ -130,25 +131,11 @@ def test_rows_in_branch_order_whatever_order_tasks_finish(network, monkeypatch):
     mask, ref = network
     _small_tasks(monkeypatch)
     in_order = analyze_chunked(mask, spacing=1.0, chunk_size=32, scheduler="synchronous")
-    real = chunked_run.executor
 
-    def reversed_streams(scheduler, budget):
-        ctx = real(scheduler, budget)
-        compute, stream, info = ctx.__enter__()
+    def backwards(stream):
+        return lambda func, vol, calls, **kwargs: reversed(list(stream(func, vol, calls, **kwargs)))
 
-        def backwards(func, vol, calls, **kwargs):
-            return reversed(list(stream(func, vol, calls, **kwargs)))
-
-        class _Ctx:
-            def __enter__(self):
-                return compute, backwards, info
-
-            def __exit__(self, *exc):
-                return ctx.__exit__(*exc)
-
-        return _Ctx()
-
-    monkeypatch.setattr(chunked_run, "executor", reversed_streams)
+    _wrap_stream(monkeypatch, backwards)
     backwards = analyze_chunked(mask, spacing=1.0, chunk_size=32, scheduler="synchronous")
     assert in_order.branches.equals(backwards.branches)
     assert in_order.points.equals(backwards.points)
@@ -169,14 +156,10 @@ def test_traced_centrelines_are_released_as_tasks_finish(network, monkeypatch):
     """The client measures each task's centrelines and drops them before the next task's arrive."""
     mask, _ = network
     _small_tasks(monkeypatch)
-    real = chunked_run.executor
     refs: list[list[weakref.ref]] = []
     alive_at_each_step: list[int] = []
 
-    def watched(scheduler, budget):
-        ctx = real(scheduler, budget)
-        compute, stream, info = ctx.__enter__()
-
+    def watched(stream):
         def spy(func, vol, calls, **kwargs):
             for i, result in stream(func, vol, calls, **kwargs):
                 gc.collect()
@@ -185,18 +168,23 @@ def test_traced_centrelines_are_released_as_tasks_finish(network, monkeypatch):
                 yield i, result
                 del result
 
-        class _Ctx:
-            def __enter__(self):
-                return compute, spy, info
+        return spy
 
-            def __exit__(self, *exc):
-                return ctx.__exit__(*exc)
-
-        return _Ctx()
-
-    monkeypatch.setattr(chunked_run, "executor", watched)
+    _wrap_stream(monkeypatch, watched)
     res = analyze_chunked(mask, spacing=1.0, chunk_size=32, scheduler="synchronous")
     assert len(refs) >= 3  # results arrived in several tasks
     assert sum(len(r) for r in refs) == res.branches.length_mm.notna().sum() >= 15
     # when a task's result arrives, no centreline of an earlier task is still alive
     assert alive_at_each_step == [0] * len(refs)
+
+
+def _wrap_stream(monkeypatch, wrap):
+    """Make analyze_chunked's executor hand out ``wrap(stream)`` instead of its task stream."""
+    real = chunked_run.executor
+
+    @contextlib.contextmanager
+    def executor(scheduler, budget):
+        with real(scheduler, budget) as (compute, stream, info):
+            yield compute, wrap(stream), info
+
+    monkeypatch.setattr(chunked_run, "executor", executor)
