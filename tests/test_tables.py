@@ -230,6 +230,7 @@ def test_missing_and_extra_columns_raise_naming_them(tmp_path):
         ("y_mm", [[1.0, 2.0], [3.0, 4.0]], "not 1-D"),
         ("y_mm", [[1.0, 2.0], [3.0]], "not 1-D"),
         ("y_mm", [1.0, (2.0, 3.0)], "not 1-D"),
+        ("branch_id", [1, (2, 3)], "not 1-D"),
     ],
 )
 def test_values_that_do_not_fit_raise(column, values, message):
@@ -240,22 +241,31 @@ def test_values_that_do_not_fit_raise(column, values, message):
 
 
 def test_long_texts_are_not_copied_into_a_fixed_width_array():
-    # np.ndim on a list of texts builds a '<U' array as wide as the longest text for every row: with
-    # 20,000 rows and one 5,000-character text that is 400 MB; the table itself needs ~2 MB here
+    # Source: NumPy's documented string inference (numpy.array on a list of str gives a '<U{longest}'
+    # array, 4 bytes per character for every row), so np.ndim on 20,000 rows with one 1,000-character
+    # text allocates about 80 MB; the table itself needs about 2 MB here
     n = 20_000
     data = _random_data(JUNCTION_COLUMNS, n, seed=9)
-    data["angles_deg"] = ["1-2:90.0"] * (n - 1) + ["x" * 5_000]
+    data["angles_deg"] = ["1-2:90.0"] * (n - 1) + ["x" * 1_000]
     tracemalloc.start()
     try:
         table = make_table(JUNCTION_COLUMNS, data)
         peak = tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()
-    assert table["angles_deg"].iloc[-1] == "x" * 5_000
+    assert table["angles_deg"].iloc[-1] == "x" * 1_000
     assert peak < 20 * 2**20, f"make_table peaked at {peak / 2**20:.0f} MiB"
 
 
-@pytest.mark.parametrize(("values", "message"), [([1, 2], "integer values"), ([None, ""], "''")])
+@pytest.mark.parametrize(
+    ("values", "message"),
+    [
+        ([1, 2], "integer values"),
+        ([None, ""], "''"),
+        ([["a"], ["b", "c"]], "not 1-D"),
+        (["a", ("b",)], "not 1-D"),
+    ],
+)
 def test_text_columns_reject_numbers_and_missing(values, message):
     data = _random_data(JUNCTION_COLUMNS, 2, seed=8)
     data["branch_ids"] = values

@@ -32,7 +32,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from pandas.api.types import infer_dtype
+from pandas.api.types import infer_dtype, is_list_like
 
 from vesselgeom.errors import InputError
 
@@ -546,17 +546,19 @@ def _ndim(values: Any) -> int:
 
     Not ``np.ndim``: on a list of texts that builds a fixed-width ``<U`` array as wide as the longest
     text times the row count (41,096 junction rows with one 1,200-character ``angles_deg`` took a
-    transient 200 MB); an object array holds one pointer per row.
+    transient 200 MB); an object array holds one pointer per row, and the texts are not copied.
     """
     ndim = getattr(values, "ndim", None)
     if ndim is not None:
-        return int(ndim)
+        return ndim if isinstance(ndim, int | np.integer) else -1
     try:
         arr = np.asarray(values, dtype=object)
     except ValueError:
         return -1
-    if arr.ndim == 1 and any(isinstance(v, list | tuple | np.ndarray) for v in arr.tolist()):
-        return -1  # ragged rows kept as objects
+    # ragged rows stay objects inside a 1-D array; only a mixed column can hold them
+    if arr.ndim == 1 and infer_dtype(arr, skipna=True) in ("mixed", "mixed-integer", "unknown-array"):
+        if any(is_list_like(v) for v in arr):
+            return -1
     return arr.ndim
 
 
