@@ -545,8 +545,9 @@ def _ndim(values: Any) -> int:
     """Dimensions of a column's values; -1 for ragged nested sequences.
 
     Not ``np.ndim``: on a list of texts that builds a fixed-width ``<U`` array as wide as the longest
-    text times the row count (41,096 junction rows with one 1,200-character ``angles_deg`` took a
-    transient 200 MB); an object array holds one pointer per row, and the texts are not copied.
+    text times the row count (41,096 junction rows whose longest ``angles_deg`` has 1,349 characters:
+    211 MB, 4 bytes per character); an object array holds one pointer per row, and the texts are not
+    copied.
     """
     ndim = getattr(values, "ndim", None)
     if ndim is not None:
