@@ -35,8 +35,9 @@ HERE = Path(__file__).resolve().parent
 # The overhead stated in docs/chunked.md: anonymous memory above the post-import baseline stays within
 # budget + OVERHEAD_MB + OVERHEAD_BYTES_PER_SKELETON_VOXEL x skeleton voxels
 # + OVERHEAD_BYTES_PER_BRANCH x branches (threaded scheduler, 2 workers, Linux/glibc). The constant was
-# set from the 512^3, 768^3 and 1024^3 runs, the two rates from the client's held state (tracemalloc
-# table in docs/chunked.md); checked on networks not used to set them.
+# set from the 512^3, 768^3 and 1024^3 runs at 4x the budget, the two rates from the client's held state
+# (tracemalloc table in docs/chunked.md, bench_client_memory.py); the constant checked on 640^3 and a
+# denser 512^3 network, the rates by the 1024^3 network at 16x the budget (results_chunked.md).
 OVERHEAD_MB = 100.0
 OVERHEAD_BYTES_PER_SKELETON_VOXEL = 100.0
 OVERHEAD_BYTES_PER_BRANCH = 1000.0

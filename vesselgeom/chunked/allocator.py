@@ -3,7 +3,7 @@
 glibc serves a freed large block's size from its heaps next time (its mmap threshold rises after each
 large free, up to 32 MB), and its heaps return memory to the system only from their top. A run that
 allocates and frees box after box in worker threads therefore keeps hundreds of MB it no longer uses:
-on a 512^3 network with a 32 MB budget, 101 MB of anonymous memory above the budget, 29 MB with the
+on a 512^3 network with a 32 MB budget, 101 MB of anonymous memory above the budget, 43 MB with the
 threshold held at 1 MB (``benchmarks/results_chunked.md``). :func:`prefer_mmap` holds it there, so every
 array of 1 MB or more is mapped on its own and returned when freed; :func:`return_freed_memory` trims the
 heaps after a stage.
@@ -35,7 +35,8 @@ def prefer_mmap() -> None:
     """Hold glibc's mmap threshold at :data:`MMAP_THRESHOLD` in this process (idempotent).
 
     A process-wide setting that stays after the run: large arrays are then mapped and unmapped on their
-    own, which costs a few percent of speed (145 s against 138 s on the 512^3 benchmark).
+    own, which costs some speed (not measured on a quiet machine: the recorded 512^3 runs took 138 s
+    before and 167 s after, the latter with another job on the cores).
     """
     libc = _libc()
     if libc is not None:
