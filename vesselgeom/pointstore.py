@@ -62,7 +62,7 @@ class SpilledPoints:
         self._dtypes = {c.name: _NUMPY[c.dtype] for c in POINT_COLUMNS}
         self._files: dict[str, IO[bytes]] | None = {}
         try:
-            with self._writing():
+            with _writing(self._folder):
                 for name in self._dtypes:
                     self._files[name] = tempfile.TemporaryFile(dir=self._folder)  # noqa: SIM115
         except BaseException:
@@ -89,7 +89,7 @@ class SpilledPoints:
                 )
         if not len(ids):
             return
-        with self._writing():
+        with _writing(self._folder):
             for name, handle in self._files.items():
                 values[name].tofile(handle)
         starts = np.flatnonzero(np.r_[True, ids[1:] != ids[:-1]])
@@ -121,7 +121,7 @@ class SpilledPoints:
                 handle = files[name]
                 handle.flush()
                 if order is not None:
-                    with self._writing():
+                    with _writing(self._folder):
                         ordered = tempfile.TemporaryFile(dir=self._folder)  # noqa: SIM115
                         try:
                             _gather(handle, ordered, dtype, counts, order, self.rows)
@@ -143,9 +143,6 @@ class SpilledPoints:
         files, self._files = self._files or {}, None
         for handle in files.values():
             handle.close()
-
-    def _writing(self) -> contextlib.AbstractContextManager[None]:
-        return _writing(self._folder)
 
 
 @contextlib.contextmanager

@@ -90,7 +90,7 @@ class TableBuilder:
         self._pending_rows += len(lines)
         if self._pending_rows >= _TYPED_ROWS:
             self._type_pending()
-        points = point_columns_many(lines, [c.branch_id for c in contexts])
+        points = point_columns_many(lines, ids.tolist())
         if self._spilled is None:
             self._points.append(points)
         else:
