@@ -41,10 +41,13 @@ def _shells() -> np.ndarray:
     return m
 
 
+@pytest.mark.parametrize("threads", [1, 2])
 @pytest.mark.parametrize("slab", [None, 64])
 @pytest.mark.parametrize("fill", [True, False])
 @pytest.mark.parametrize("case", ["shells", "sparse", "dense", "empty"])
-def test_components_match_scipy_reference(case, fill, slab, monkeypatch):
+def test_components_match_scipy_reference(case, fill, slab, threads, monkeypatch):
+    # threads: foreground and enclosed background labelled one after the other, or at the same time
+    monkeypatch.setattr("vesselgeom.crosssection._THREADS", threads)
     if slab:  # labels computed in thin slabs: every few planes a seam to join across
         monkeypatch.setattr("vesselgeom.labelling._SLAB_VOXELS", slab * mask_plane(case))
     rng = np.random.default_rng(3)
