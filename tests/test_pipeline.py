@@ -198,3 +198,30 @@ def test_y_bifurcation_angles_and_straight_arms(seed):
     assert angles[1] == pytest.approx(142.5, abs=3.0) and angles[2] == pytest.approx(142.5, abs=3.0)
     assert (res.branches["max_curvature_per_mm"] < 0.02).all()
     assert (res.branches["inflection_count"] == 0).all()
+
+
+def test_free_ends_at_edge_follows_its_definition():
+    # Reference: the definition itself, worked by hand. Image of shape (20, 30, 40), crop at offset
+    # (2, 0, 5), radius 1.5 mm everywhere, 0.5 mm voxels: an end is near a face when its distance to the
+    # nearest face (in voxels) is at most 1.5 / 0.5 + 1 = 4.
+    from vesselgeom.pipeline import free_ends_at_edge
+
+    calls = []
+
+    def radius_at(ijk):
+        calls.append(len(ijk))
+        return np.full(len(ijk), 1.5)
+
+    paths = [
+        np.array([[2.0, 10, 10], [8, 10, 10]]),  # start at image index 4 on axis 0: 4 voxels, near
+        np.array([[8.0, 10, 10], [3, 10, 10]]),  # end at index 5: 5 voxels from the face, not near
+        np.array([[2.0, 10, 10], [8, 10, 10]]),  # near end, but it is a junction end (not free)
+        np.array([[9.0, 15, 20], [9, 15, 31]]),  # end at image x = 36: 3 voxels from the face 39
+        np.array([[9.0, 15, 20], [9, 15, 25]]),  # both ends far from every face
+    ]
+    frees = [(True, False), (False, True), (False, True), (False, True), (True, True)]
+    got = free_ends_at_edge(paths, frees, np.array([2, 0, 5]), radius_at, 0.5, (20, 30, 40))
+    assert got.tolist() == [True, False, False, True, False]
+    assert calls == [6]  # one radius query for all six free ends
+    none_free = free_ends_at_edge(paths, [(False, False)] * 5, np.zeros(3), radius_at, 0.5, (20, 30, 40))
+    assert not none_free.any() and calls == [6]  # and no query without free ends

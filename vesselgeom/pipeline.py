@@ -225,14 +225,20 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         inputs, contexts = [], []
         node_ids = {nid: next_node + i for i, nid in enumerate(sorted(graph.nodes))}
         next_node += len(node_ids)
-        for b in graph.branches:
+        kinds = [graph.branch_kind(b) for b in graph.branches]
+        at_edge = np.zeros(len(kinds), bool)
+        if comp.touches_border:
+            at_edge = free_ends_at_edge(
+                [b.path for b in graph.branches],
+                [free for _, free in kinds],
+                comp.offset,
+                boundary.at_index,
+                float(spacing.min()),
+                volume.shape,
+            )
+        for b, (kind, free), edge in zip(graph.branches, kinds, at_edge.tolist(), strict=True):
             world = b.path @ aff[:3, :3].T + aff[:3, 3]
-            kind, free = graph.branch_kind(b)
-            flags = ()
-            if comp.touches_border and free_end_at_edge(
-                b.path, free, comp.offset, boundary.at_index, float(spacing.min()), volume.shape
-            ):
-                flags = ("touches_image_edge",)
+            flags = ("touches_image_edge",) if edge else ()
             inputs.append(BranchInput(world, b.closed, free[0], free[1]))
             contexts.append(
                 BranchContext(
@@ -322,17 +328,43 @@ def derived_values(settings: Settings, spacing: np.ndarray, min_voxels: float) -
     }
 
 
-def free_end_at_edge(path, free, offset, radius_at, voxel_mm, shape) -> bool:
-    """Whether a free end of the branch lies within its own radius (+1 voxel) of the image's faces.
+def free_ends_at_edge(paths, frees, offset, radius_at, voxel_mm, shape) -> np.ndarray:
+    """Per branch: whether a free end lies within its own radius (+1 voxel) of the image's faces.
 
     Such an end is where the field of view cut the vessel, so the branch is truncated: its length and
     end-point indices do not describe the whole vessel.
+
+    Parameters
+    ----------
+    paths : sequence of (n_i, 3) arrays
+        Branch paths in the index space of ``radius_at`` (a crop at ``offset`` in the image).
+    frees : sequence of (bool, bool)
+        Whether each branch's start and end are free (terminal) ends.
+    offset : (3,) array
+        The crop's voxel [0, 0, 0] in the image's index space.
+    radius_at : callable
+        (m, 3) crop indices -> (m,) radii in mm; called once, for all free ends.
+    voxel_mm : float
+        The smallest voxel size (mm): radii in voxels are radius / voxel_mm.
+    shape : 3 ints
+        The image's shape.
+
+    Returns
+    -------
+    (len(paths),) bool array
     """
-    for is_free, point in zip(free, (path[0], path[-1]), strict=True):
-        if not is_free:
-            continue
-        g = point + offset
-        to_face = float(min(g.min(), (np.asarray(shape) - 1 - g).min()))
-        if to_face <= float(radius_at(point[None])[0]) / voxel_mm + 1.0:
-            return True
-    return False
+    ends, owner = [], []
+    for i, (path, free) in enumerate(zip(paths, frees, strict=True)):
+        for is_free, point in zip(free, (path[0], path[-1]), strict=True):
+            if is_free:
+                ends.append(point)
+                owner.append(i)
+    out = np.zeros(len(paths), bool)
+    if not ends:
+        return out
+    pts = np.asarray(ends, float)
+    g = pts + offset
+    to_face = np.minimum(g.min(axis=1), (np.asarray(shape) - 1 - g).min(axis=1))
+    near = to_face <= np.asarray(radius_at(pts), float) / voxel_mm + 1.0
+    out[np.asarray(owner)[near]] = True
+    return out
