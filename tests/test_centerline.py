@@ -170,3 +170,65 @@ def test_loop_below_the_smoothing_scale_is_not_fitted(ring_radius, traced, at_ju
     if traced:
         k = cl.frame.curvature[cl.measured]
         assert abs(np.mean(k) * ring_radius - 1.0) < 0.03
+
+
+def _cut_one_by_one(branches, r_flat, scales, settings):
+    """The junction cut written branch by branch, straight from its definition (the reference)."""
+    paths, targets, at = [], {}, 0
+    for i, b in enumerate(branches):
+        path, r = b.path, r_flat[at : at + len(b.path)]
+        at += len(b.path)
+        if b.closed or len(path) < 4 or settings.junction_cut_radii <= 0:
+            paths.append(path)
+            continue
+        lo, hi = 0, len(path)
+        for side, free in ((0, b.free_start), (1, b.free_end)):
+            if free:
+                continue
+            node = path[0] if side == 0 else path[-1]
+            r_node = r[0] if side == 0 else r[-1]
+            cut = (r_node if np.isfinite(r_node) else 0.0) + settings.junction_cut_radii * scales[i]
+            far = [float(np.linalg.norm(p - node)) >= cut for p in path]
+            if side == 0:
+                new_lo, new_hi = (far.index(True) if any(far) else len(path)), hi
+            else:
+                new_lo, new_hi = lo, (len(path) - far[::-1].index(True) if any(far) else 0)
+            kept = path[new_lo:new_hi]
+            if len(kept) >= 4 and np.linalg.norm(kept[-1] - kept[0]) >= 2 * scales[i]:
+                lo, hi = new_lo, new_hi
+                targets[(i, side)] = node
+        paths.append(path[lo:hi])
+    return paths, targets
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_junction_cut_of_a_batch_equals_branch_by_branch(seed):
+    # reference: the cut's definition applied to each branch alone (above); random branches with every
+    # combination of free/junction ends, closed ones, NaN radii, 1-3 point paths and curved paths
+    # whose far points come back near the node
+    rng = np.random.default_rng(seed)
+    branches, radii = [], []
+    for _ in range(60):
+        n = int(rng.integers(1, 30))
+        t = np.linspace(0, rng.uniform(1, 4) * np.pi, n)
+        path = np.stack([np.cos(t), np.sin(t), rng.uniform(-0.2, 0.2) * t], axis=1) * rng.uniform(2, 8)
+        path += rng.normal(scale=0.2, size=path.shape)
+        branches.append(
+            BranchInput(path, bool(rng.random() < 0.1), bool(rng.random() < 0.4), bool(rng.random() < 0.4))
+        )
+        r = rng.uniform(0.5, 3, n)
+        r[rng.random(n) < 0.1] = np.nan
+        radii.append(r)
+    scales = rng.uniform(0.5, 3, len(branches))
+    for cut_radii in (1.0, 0.0, 3.0):
+        settings = Settings(junction_cut_radii=cut_radii)
+        r_flat = np.concatenate(radii)
+        got_paths, got_targets = centerline._cut_near_junctions(branches, r_flat, scales, settings)
+        ref_paths, ref_targets = _cut_one_by_one(branches, r_flat, scales, settings)
+        for g, r in zip(got_paths, ref_paths, strict=True):
+            np.testing.assert_array_equal(g, r)
+        assert got_targets.keys() == ref_targets.keys()
+        for key, node in ref_targets.items():
+            np.testing.assert_array_equal(got_targets[key], node)
+        if cut_radii == 1.0:  # the cases are not trivial: some ends cut, some refused
+            assert 5 < len(ref_targets) < sum(not (b.free_start and b.free_end) for b in branches)

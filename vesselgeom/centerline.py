@@ -116,12 +116,6 @@ def _loop_length(path: np.ndarray) -> float:
     return float(np.linalg.norm(np.diff(path, axis=0, append=path[:1]), axis=1).sum())
 
 
-def _split(values: np.ndarray, gid: np.ndarray, n: int) -> list[np.ndarray]:
-    """Rows of ``values`` grouped by ``gid`` (sorted), as a list of n arrays (empty for absent groups)."""
-    bounds = np.r_[0, np.cumsum(np.bincount(gid, minlength=n))]
-    return [values[bounds[i] : bounds[i + 1]] for i in range(n)]
-
-
 def _group_median(values: np.ndarray, gid: np.ndarray, n: int) -> np.ndarray:
     """np.nanmedian of ``values`` in each group ``gid`` (0..n-1); NaN for an empty or all-NaN group.
 
@@ -254,7 +248,7 @@ def _extend_free_ends_many(
 
 
 def _cut_near_junctions(
-    branches: list[BranchInput], r_all: list[np.ndarray], scales: np.ndarray, settings: Settings
+    branches: list[BranchInput], r_flat: np.ndarray, scales: np.ndarray, settings: Settings
 ) -> tuple[list[np.ndarray], dict[tuple[int, int], np.ndarray]]:
     """Leave out the points of each junction end that lie inside the junction region.
 
@@ -263,33 +257,55 @@ def _cut_near_junctions(
     every branch near its junctions (a spurious curvature and biased branch angles). Points closer to
     the junction position than its radius plus ``junction_cut_radii`` scales are dropped before fitting
     (when enough of the branch remains); the end is later joined to the junction by a straight stub.
+
+    Per branch (open, at least 4 points), the start is cut first: from the first point at least the cut
+    distance from the start node on, if at least 4 points remain whose ends are at least 2 scales apart;
+    then the end likewise, up to the last point far enough from the end node, keeping the start's cut.
+    All branches of the batch at once (``r_flat``: radius at every path point, paths concatenated).
     Returns the paths to fit and, per cut end, the junction position.
     """
-    paths, targets = [], {}
-    for i, (b, r) in enumerate(zip(branches, r_all, strict=True)):
-        path = b.path
-        if b.closed or len(path) < 4 or settings.junction_cut_radii <= 0:
-            paths.append(path)
+    lens = np.array([len(b.path) for b in branches], np.intp)
+    paths = [b.path for b in branches]
+    targets: dict[tuple[int, int], np.ndarray] = {}
+    if settings.junction_cut_radii <= 0 or not (lens >= 4).any():
+        return paths, targets
+    closed = np.array([b.closed for b in branches])
+    free = np.array([(b.free_start, b.free_end) for b in branches], bool).reshape(-1, 2)
+    pts = np.concatenate(paths)
+    start = np.cumsum(lens) - lens
+    last = start + lens - 1
+    g = np.repeat(np.arange(len(branches)), lens)
+    j = np.arange(len(g)) - start[g]
+    eligible = ~closed & (lens >= 4)
+    has = lens > 0  # (segments of reduceat: the non-empty paths, each starting where its points do)
+    lo, hi = np.zeros(len(branches), np.intp), lens.copy()
+    for side, node_row in ((0, start), (1, last)):
+        node_row = np.clip(node_row, 0, len(pts) - 1)  # (an empty path's row is never used)
+        todo = eligible & ~free[:, side]
+        if not todo.any():
             continue
-        lo, hi = 0, len(path)
-        for side, free in ((0, b.free_start), (1, b.free_end)):
-            if free:
-                continue
-            node = path[0] if side == 0 else path[-1]
-            r_node = r[0] if side == 0 else r[-1]
-            cut = (r_node if np.isfinite(r_node) else 0.0) + settings.junction_cut_radii * scales[i]
-            far = np.linalg.norm(path - node, axis=1) >= cut
-            if side == 0:
-                k = int(np.argmax(far)) if far.any() else len(path)
-                new_lo, new_hi = k, hi
-            else:
-                k = len(path) - int(np.argmax(far[::-1])) if far.any() else 0
-                new_lo, new_hi = lo, k
-            kept = path[new_lo:new_hi]
-            if len(kept) >= 4 and np.linalg.norm(kept[-1] - kept[0]) >= 2 * scales[i]:
-                lo, hi = new_lo, new_hi
-                targets[(i, side)] = node
-        paths.append(path[lo:hi])
+        r_node = r_flat[node_row]
+        cut = np.where(np.isfinite(r_node), r_node, 0.0) + settings.junction_cut_radii * scales
+        far = np.linalg.norm(pts - pts[node_row][g], axis=1) >= cut[g]
+        k = np.zeros(len(branches), np.intp)
+        if side == 0:  # the first far point, or none (len)
+            k[has] = np.minimum.reduceat(np.where(far, j, lens[g]), start[has])
+            new_lo, new_hi = k, hi
+        else:  # one past the last far point, or none (0)
+            k[has] = np.maximum.reduceat(np.where(far, j + 1, 0), start[has])
+            new_lo, new_hi = lo, k
+        n_kept = new_hi - new_lo
+        ok = todo & (n_kept >= 4)
+        first = start + np.minimum(new_lo, lens - 1)
+        end = start + np.clip(new_hi - 1, 0, lens - 1)
+        span = np.linalg.norm(pts[end] - pts[first], axis=1)
+        ok &= span >= 2 * scales
+        lo, hi = np.where(ok, new_lo, lo), np.where(ok, new_hi, hi)
+        for i in np.flatnonzero(ok).tolist():
+            targets[(i, side)] = pts[node_row[i]]
+    cut_any = (lo > 0) | (hi < lens)
+    for i in np.flatnonzero(cut_any).tolist():
+        paths[i] = paths[i][lo[i] : hi[i]]
     return paths, targets
 
 
@@ -364,7 +380,6 @@ def _trace_batch(
     lens = np.array([len(b.path) for b in branches])
     r_flat = boundary(np.concatenate([b.path for b in branches]))
     g_flat = np.repeat(np.arange(nb), lens)
-    r_all = _split(r_flat, g_flat, nb)
     # median radius of each branch, leaving out its end points when it has more than four
     j_flat = np.arange(len(g_flat)) - np.repeat(np.cumsum(lens) - lens, lens)
     inner = (lens[g_flat] <= 4) | ((j_flat > 0) & (j_flat < lens[g_flat] - 1))
@@ -375,7 +390,7 @@ def _trace_batch(
     scales = np.where(lens == 0, floor_scale, scales)
     closed = [b.closed for b in branches]
     smoothing = settings.smoothing_radii * scales
-    paths, targets = _cut_near_junctions(branches, r_all, scales, settings)
+    paths, targets = _cut_near_junctions(branches, r_flat, scales, settings)
     fits = fit_curves(paths, smoothing_mm=smoothing, closed=closed)
     # A loop (closed, or leaving and re-entering the same junction) shorter than 2 pi scales bends
     # tighter than the smoothing scale (and than a tube of its radius can): its fit collapses into cusps
