@@ -13,7 +13,9 @@ measure: ``vesselgeom.tabulate.TableBuilder.add_branches``, i.e. ``branch_column
 ``point_columns_many``) on N branches. The branches are those
 of a fixed-seed 256^3 network, prepared as the pipeline prepares them (components, thinning, graph,
 pruning), and cycled component by component until N branches have been traced, as if the network were
-tiled N / 396 times. Reports time per branch; linear cost means a constant time per branch.
+tiled N / 396 times; as in the pipeline, components with small crops (``vesselgeom.packing``) are traced
+together, packed side by side (``--no-packing``: every component alone, as before 2026-12-02 09:00).
+Reports time per branch; linear cost means a constant time per branch.
 
 Results are appended to ``benchmarks/results.md`` (or ``--out``) with the machine's description.
 """
@@ -83,7 +85,7 @@ def _network(name: str) -> dict:
 
 
 def _prepared_components():
-    """Per component of the ladder's source network: (section, boundary, inputs, contexts)."""
+    """Per component of the ladder's source network: (section, boundary, inputs, contexts, crop, affine)."""
     import numpy as np
 
     from vesselgeom.centerline import BranchInput
@@ -116,12 +118,13 @@ def _prepared_components():
             inputs.append(BranchInput(world, b.closed, free[0], free[1]))
             contexts.append(BranchContext(i + 1, comp.component_id, "internal", None, None))
         if inputs:
-            out.append((CrossSection(comp.mask, aff), boundary, inputs, contexts))
+            out.append((CrossSection(comp.mask, aff), boundary, inputs, contexts, comp.mask, aff))
     return out, float(np.mean(np.abs(np.diag(affine)[:3]))), settings
 
 
-def _ladder(n: int) -> dict:
+def _ladder(n: int, packing: bool = True) -> dict:
     from vesselgeom.centerline import trace_centerlines
+    from vesselgeom.packing import PACK_MAX_VOXELS, trace_packed
     from vesselgeom.tabulate import TableBuilder
 
     comps, voxel_mm, settings = _prepared_components()
@@ -130,27 +133,48 @@ def _ladder(n: int) -> dict:
     base_rss = _peak_mb()
     trace = measure = 0.0
     done = points = 0
+    pending: list = []  # small components waiting to be traced together, as the pipeline does
+
+    def measured(lines, contexts) -> None:
+        nonlocal measure, points
+        t = time.perf_counter()
+        builder.add_branches(lines, contexts)
+        points += sum(len(cl.arc) for cl in lines if cl is not None)
+        measure += time.perf_counter() - t
+
+    def flush() -> None:
+        nonlocal trace
+        if not pending:
+            return
+        t = time.perf_counter()
+        traced = trace_packed([(m, a, i) for m, a, i, _ in pending], voxel_mm=voxel_mm, settings=settings)
+        trace += time.perf_counter() - t
+        measured([cl for lines in traced for cl in lines], [c for p in pending for c in p[3]])
+        pending.clear()
+
     while done < n:
-        for section, boundary, inputs, contexts in comps:
+        for section, boundary, inputs, contexts, crop, aff in comps:
             take = min(len(inputs), n - done)
             if take <= 0:
                 break
+            done += take
+            if packing and crop.size <= PACK_MAX_VOXELS:
+                pending.append((crop, aff, inputs[:take], contexts[:take]))
+                continue
+            flush()
             t = time.perf_counter()
             lines = trace_centerlines(
                 inputs[:take], section=section, boundary=boundary, voxel_mm=voxel_mm, settings=settings
             )
-            t1 = time.perf_counter()
-            builder.add_branches(lines, contexts[:take])
-            points += sum(len(cl.arc) for cl in lines if cl is not None)
-            t2 = time.perf_counter()
-            trace += t1 - t
-            measure += t2 - t1
-            done += take
+            trace += time.perf_counter() - t
+            measured(lines, contexts[:take])
+        flush()
     total = trace + measure
     return {
         "branches": n,
         "source_branches": source_branches,
         "points": points,
+        "packing": packing,
         "trace_s": round(trace, 2),
         "measure_s": round(measure, 2),
         "geometry_s": round(total, 2),
@@ -160,8 +184,8 @@ def _ladder(n: int) -> dict:
     }
 
 
-def _run(flag: str, value: str) -> dict:
-    proc = subprocess.run([sys.executable, __file__, flag, value], capture_output=True, text=True, check=True)
+def _run(*args: str) -> dict:
+    proc = subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True, check=True)
     return json.loads(proc.stdout.strip().splitlines()[-1])
 
 
@@ -196,6 +220,9 @@ def main() -> None:
     ap.add_argument("--ladder", nargs="*", type=int, default=list(LADDER), help="branch counts")
     ap.add_argument("--one", help=argparse.SUPPRESS)
     ap.add_argument("--one-ladder", type=int, help=argparse.SUPPRESS)
+    ap.add_argument(
+        "--no-packing", action="store_true", help="ladder: trace every component alone (no packing)"
+    )
     ap.add_argument("--out", default=str(HERE / "results.md"))
     ap.add_argument("--label", default="", help="a note for the results heading (e.g. 'before')")
     args = ap.parse_args()
@@ -203,7 +230,7 @@ def main() -> None:
         print(json.dumps(_network(args.one)))
         return
     if args.one_ladder:
-        print(json.dumps(_ladder(args.one_ladder)))
+        print(json.dumps(_ladder(args.one_ladder, packing=not args.no_packing)))
         return
     lines = [f"\n## {time.strftime('%Y-%m-%d %H:%M')} {args.label}".rstrip(), f"Machine: {_machine()}.", ""]
     if args.sizes:
@@ -225,19 +252,20 @@ def main() -> None:
     if args.ladder:
         lines += [
             "",
-            "| geometry ladder: branches | points | trace s | measure s | total s | ms / branch "
-            "| x time for 10x branches | peak RSS MB |",
-            "|---|---|---|---|---|---|---|---|",
+            "| geometry ladder: branches | small components | points | trace s | measure s | total s "
+            "| ms / branch | x time for 10x branches | peak RSS MB |",
+            "|---|---|---|---|---|---|---|---|---|",
         ]
     prev = None
     for n in args.ladder:
-        r = _run("--one-ladder", str(n))
+        r = _run("--one-ladder", str(n), *(["--no-packing"] if args.no_packing else []))
         print(json.dumps(r), flush=True)
         ratio = "-"
         if prev and prev["branches"] * 10 == n:
             ratio = f"{r['geometry_s'] / prev['geometry_s']:.1f}"
         lines.append(
-            f"| {n} | {r['points']} | {r['trace_s']} | {r['measure_s']} | {r['geometry_s']} | "
+            f"| {n} | {'packed' if r['packing'] else 'alone'} | {r['points']} | {r['trace_s']} | "
+            f"{r['measure_s']} | {r['geometry_s']} | "
             f"{r['ms_per_branch']} | {ratio} | {r['peak_rss_mb']} |"
         )
         prev = r

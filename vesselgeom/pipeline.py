@@ -28,6 +28,7 @@ from .graph import build_graph, prune_spurs
 from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
 from .io.affine import voxel_sizes
 from .measure import BranchContext
+from .packing import PACK_BATCH_VOXELS, PACK_MAX_VOXELS, trace_packed
 from .qc import profile_figures, qc_figure
 from .radius import BoundaryDistance
 from .settings import Settings
@@ -195,6 +196,29 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
     builder = TableBuilder(settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing.max()))
     next_branch, next_node = 1, 1
 
+    # small components wait here (crop, affine, inputs, contexts, junction rows) to be traced together
+    pending: list[tuple] = []
+    pending_branches = pending_voxels = 0
+
+    def flush() -> None:
+        nonlocal pending_branches, pending_voxels
+        if not pending:
+            return
+        t0 = time.perf_counter()
+        traced = trace_packed(
+            [(mask, aff, inputs) for mask, aff, inputs, _, _ in pending], voxel_mm=voxel_mm, settings=settings
+        )
+        timings["trace"] += time.perf_counter() - t0
+        t0 = time.perf_counter()
+        # one batch of rows for all of them, then their junctions (which need their branches' rows)
+        builder.add_branches([cl for lines in traced for cl in lines], [c for p in pending for c in p[3]])
+        for p in pending:
+            for args in p[4]:
+                builder.add_junction(*args)
+        timings["measure"] += time.perf_counter() - t0
+        pending.clear()
+        pending_branches = pending_voxels = 0
+
     t = time.perf_counter()
     components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
     for comp in components:
@@ -221,7 +245,6 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         timings["graph"] += time.perf_counter() - t
 
         t = time.perf_counter()
-        section = CrossSection(comp.mask, aff)
         inputs, contexts = [], []
         node_ids = {nid: next_node + i for i, nid in enumerate(sorted(graph.nodes))}
         next_node += len(node_ids)
@@ -252,6 +275,23 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             )
             next_branch += 1
         timings["trace"] += time.perf_counter() - t
+        t = time.perf_counter()
+        junction_rows = _junction_args(graph, contexts, node_ids, comp.component_id, aff, boundary)
+        timings["measure"] += time.perf_counter() - t
+
+        if comp.mask.size <= PACK_MAX_VOXELS:  # traced later, packed with other small components
+            pending.append((comp.mask, aff, inputs, contexts, junction_rows))
+            pending_branches += len(inputs)
+            pending_voxels += comp.mask.size
+            if pending_branches >= _BATCH_BRANCHES or pending_voxels >= PACK_BATCH_VOXELS:
+                flush()
+            del comp, boundary, graph, inputs, contexts, junction_rows
+            t = time.perf_counter()
+            continue
+        flush()  # tables keep the components' order
+        t = time.perf_counter()
+        section = CrossSection(comp.mask, aff)
+        timings["trace"] += time.perf_counter() - t
         # traced and measured in batches: only each branch's end directions outlive its batch
         for lo in range(0, len(inputs), _BATCH_BRANCHES):
             t = time.perf_counter()
@@ -269,22 +309,13 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             timings["measure"] += time.perf_counter() - t
 
         t = time.perf_counter()
-        ends_at: dict[int, list[tuple[int, bool]]] = {}  # branch ends per node, in branch order
-        for ctx, b in zip(contexts, graph.branches, strict=True):
-            if b.start is not None:
-                ends_at.setdefault(b.start, []).append((ctx.branch_id, True))
-            if b.end is not None:
-                ends_at.setdefault(b.end, []).append((ctx.branch_id, False))
-        junctions = [nid for nid in sorted(graph.nodes) if graph.nodes[nid].kind == "junction"]
-        if junctions:
-            pos = np.array([graph.nodes[nid].position for nid in junctions]) @ aff[:3, :3].T + aff[:3, 3]
-            radii = boundary(pos)
-            for nid, p, r in zip(junctions, pos, radii, strict=True):
-                builder.add_junction(node_ids[nid], comp.component_id, p, float(r), ends_at.get(nid, []))
+        for args in junction_rows:
+            builder.add_junction(*args)
         # nothing of this component (its crop, sampler, k-d tree, graph) outlives its pass
-        del comp, section, boundary, graph, inputs, contexts, ends_at
+        del comp, section, boundary, graph, inputs, contexts, junction_rows
         timings["measure"] += time.perf_counter() - t
         t = time.perf_counter()
+    flush()
 
     for msg in notes[len(volume.warnings) :]:
         warnings.warn(f"{volume.source}: {msg}", VesselgeomWarning, stacklevel=2)
@@ -314,6 +345,25 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         "environment": {"python": platform.python_version(), "numpy": np.__version__},
     }
     return Result(branches, points, junctions, run, volume)
+
+
+def _junction_args(graph, contexts, node_ids, component_id, aff, boundary) -> list[tuple]:
+    """Arguments of :meth:`TableBuilder.add_junction` for every junction of a component, in node order."""
+    ends_at: dict[int, list[tuple[int, bool]]] = {}  # branch ends per node, in branch order
+    for ctx, b in zip(contexts, graph.branches, strict=True):
+        if b.start is not None:
+            ends_at.setdefault(b.start, []).append((ctx.branch_id, True))
+        if b.end is not None:
+            ends_at.setdefault(b.end, []).append((ctx.branch_id, False))
+    junctions = [nid for nid in sorted(graph.nodes) if graph.nodes[nid].kind == "junction"]
+    if not junctions:
+        return []
+    pos = np.array([graph.nodes[nid].position for nid in junctions]) @ aff[:3, :3].T + aff[:3, 3]
+    radii = boundary(pos)
+    return [
+        (node_ids[nid], component_id, p, float(r), ends_at.get(nid, []))
+        for nid, p, r in zip(junctions, pos, radii, strict=True)
+    ]
 
 
 def derived_values(settings: Settings, spacing: np.ndarray, min_voxels: float) -> dict[str, float]:

@@ -1,0 +1,99 @@
+"""Benchmark: a mask of many small vessel fragments, small components packed or each traced alone.
+
+Run from the repository root: ``python benchmarks/bench_fragments.py [--cells 16] [--label NOTE]``.
+
+The mask (fixed seed): a grid of cells^3 cubes of 20 voxels, each holding one straight vessel piece of
+random direction, length 8-14 voxels and radius 1.2-2.5 voxels (as the many short pieces a segmentation
+leaves besides its main tree). It is analysed twice in one process, with the pipeline's packing of small
+components (``vesselgeom.packing``) and with every component traced alone; per-stage times, the ratio
+and the largest difference between the two tables are reported and appended to ``benchmarks/results.md``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+
+
+def fragments(cells: int, seed: int = 3) -> np.ndarray:
+    """The fragment mask: one random straight piece per 20-voxel cell."""
+    rng = np.random.default_rng(seed)
+    size = 20
+    mask = np.zeros((cells * size,) * 3, bool)
+    g = np.stack(np.meshgrid(*[np.arange(size)] * 3, indexing="ij"), axis=-1).reshape(-1, 3).astype(float)
+    for cell in np.ndindex(cells, cells, cells):
+        d = rng.normal(size=3)
+        d /= np.linalg.norm(d)
+        half = rng.uniform(4, 7)
+        radius = rng.uniform(1.2, 2.5)
+        centre = (size - 1) / 2 + rng.uniform(-1, 1, 3)
+        t = np.clip((g - centre) @ d, -half, half)
+        inside = np.linalg.norm(g - centre - t[:, None] * d, axis=1) <= radius
+        lo = np.array(cell) * size
+        mask[lo[0] : lo[0] + size, lo[1] : lo[1] + size, lo[2] : lo[2] + size] = inside.reshape((size,) * 3)
+    return mask
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--cells", type=int, default=16, help="cells per axis (cells^3 fragments)")
+    ap.add_argument("--out", default=str(HERE / "results.md"))
+    ap.add_argument("--label", default="", help="a note for the results heading")
+    args = ap.parse_args()
+
+    from vesselgeom import VesselgeomWarning, analyze, pipeline
+
+    mask = fragments(args.cells)
+    runs = {}
+    for name, limit in (("packed", pipeline.PACK_MAX_VOXELS), ("alone", 0)):
+        pipeline.PACK_MAX_VOXELS = limit
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", VesselgeomWarning)  # fragments that thin to a point
+            t = time.perf_counter()
+            res = analyze(mask, spacing=1.0)
+            runs[name] = (time.perf_counter() - t, res)
+    diff = 0.0
+    for table in ("branches", "points", "junctions"):
+        a, b = getattr(runs["packed"][1], table), getattr(runs["alone"][1], table)
+        assert a.shape == b.shape and list(a.columns) == list(b.columns)
+        for col in a.columns:
+            if a[col].dtype.kind == "f":
+                diff = max(diff, float(np.nanmax(np.abs(a[col].to_numpy() - b[col].to_numpy()), initial=0.0)))
+            else:
+                assert a[col].equals(b[col]), col
+    components = int(runs["packed"][1].branches["component_id"].nunique())
+    rows = []
+    for name, (seconds, res) in runs.items():
+        stages = ", ".join(f"{k} {v}" for k, v in res.run["timings_seconds"].items())
+        rows.append(
+            f"| {name} | {components} | {len(res.branches)} | {seconds:.2f} | "
+            f"{1000 * seconds / components:.2f} | {stages} |"
+        )
+        print(rows[-1])
+    ratio = runs["alone"][0] / runs["packed"][0]
+    summary = f"alone / packed: {ratio:.2f}x; largest difference between the two tables: {diff:.1e}"
+    print(summary)
+    lines = [
+        f"\n## {time.strftime('%Y-%m-%d %H:%M')} fragments {args.label}".rstrip(),
+        f"`benchmarks/bench_fragments.py --cells {args.cells}`: {mask.shape} mask, {int(mask.sum())} "
+        "foreground voxels.",
+        "",
+        "| small components | components with branches | branches | analyze s | ms / component | stages s |",
+        "|---|---|---|---|---|---|",
+        *rows,
+        "",
+        summary + ".",
+    ]
+    with Path(args.out).open("a") as fh:
+        fh.write("\n".join(lines) + "\n")
+    print(f"appended to {args.out}")
+
+
+if __name__ == "__main__":
+    main()
