@@ -124,7 +124,8 @@ def _prepared_components():
 
 def _ladder(n: int, packing: bool = True) -> dict:
     from vesselgeom.centerline import trace_centerlines
-    from vesselgeom.packing import PACK_MAX_VOXELS, trace_packed
+    from vesselgeom.packing import PACK_BATCH_VOXELS, PACK_MAX_VOXELS, PackLayout, trace_packed
+    from vesselgeom.pipeline import _BATCH_BRANCHES
     from vesselgeom.tabulate import TableBuilder
 
     comps, voxel_mm, settings = _prepared_components()
@@ -133,7 +134,11 @@ def _ladder(n: int, packing: bool = True) -> dict:
     base_rss = _peak_mb()
     trace = measure = 0.0
     done = points = 0
-    pending: list = []  # small components waiting to be traced together, as the pipeline does
+    # small components wait to be traced together, with the pipeline's limits (the packed path builds
+    # its k-d tree within the timing; the path alone reuses the one built beforehand)
+    pending: list = []
+    linear = comps[0][5][:3, :3]
+    layout = PackLayout(linear, voxel_mm)
 
     def measured(lines, contexts) -> None:
         nonlocal measure, points
@@ -143,7 +148,7 @@ def _ladder(n: int, packing: bool = True) -> dict:
         measure += time.perf_counter() - t
 
     def flush() -> None:
-        nonlocal trace
+        nonlocal trace, layout
         if not pending:
             return
         t = time.perf_counter()
@@ -151,6 +156,7 @@ def _ladder(n: int, packing: bool = True) -> dict:
         trace += time.perf_counter() - t
         measured([cl for lines in traced for cl in lines], [c for p in pending for c in p[3]])
         pending.clear()
+        layout = PackLayout(linear, voxel_mm)
 
     while done < n:
         for section, boundary, inputs, contexts, crop, aff in comps:
@@ -159,6 +165,10 @@ def _ladder(n: int, packing: bool = True) -> dict:
                 break
             done += take
             if packing and crop.size <= PACK_MAX_VOXELS:
+                full = sum(len(p[2]) for p in pending) + take > _BATCH_BRANCHES
+                if full or layout.size_with(crop.shape) > PACK_BATCH_VOXELS:
+                    flush()
+                layout.add(crop.shape)
                 pending.append((crop, aff, inputs[:take], contexts[:take]))
                 continue
             flush()
@@ -168,7 +178,7 @@ def _ladder(n: int, packing: bool = True) -> dict:
             )
             trace += time.perf_counter() - t
             measured(lines, contexts[:take])
-        flush()
+    flush()
     total = trace + measure
     return {
         "branches": n,

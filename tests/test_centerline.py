@@ -204,12 +204,12 @@ def _cut_one_by_one(branches, r_flat, scales, settings):
 @pytest.mark.parametrize("seed", range(4))
 def test_junction_cut_of_a_batch_equals_branch_by_branch(seed):
     # reference: the cut's definition applied to each branch alone (above); random branches with every
-    # combination of free/junction ends, closed ones, NaN radii, 1-3 point paths and curved paths
+    # combination of free/junction ends, closed ones, NaN radii, 0-3 point paths and curved paths
     # whose far points come back near the node
     rng = np.random.default_rng(seed)
     branches, radii = [], []
     for _ in range(60):
-        n = int(rng.integers(1, 30))
+        n = int(rng.integers(0, 30))  # empty paths too (the batch code guards them)
         t = np.linspace(0, rng.uniform(1, 4) * np.pi, n)
         path = np.stack([np.cos(t), np.sin(t), rng.uniform(-0.2, 0.2) * t], axis=1) * rng.uniform(2, 8)
         path += rng.normal(scale=0.2, size=path.shape)

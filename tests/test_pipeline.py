@@ -220,8 +220,12 @@ def test_free_ends_at_edge_follows_its_definition():
         np.array([[9.0, 15, 20], [9, 15, 25]]),  # both ends far from every face
     ]
     frees = [(True, False), (False, True), (False, True), (False, True), (True, True)]
-    got = free_ends_at_edge(paths, frees, np.array([2, 0, 5]), radius_at, 0.5, (20, 30, 40))
+    got = free_ends_at_edge(
+        paths, frees, offset=np.array([2, 0, 5]), radius_at=radius_at, voxel_mm=0.5, shape=(20, 30, 40)
+    )
     assert got.tolist() == [True, False, False, True, False]
     assert calls == [6]  # one radius query for all six free ends
-    none_free = free_ends_at_edge(paths, [(False, False)] * 5, np.zeros(3), radius_at, 0.5, (20, 30, 40))
+    none_free = free_ends_at_edge(
+        paths, [(False, False)] * 5, offset=np.zeros(3), radius_at=radius_at, voxel_mm=0.5, shape=(20, 30, 40)
+    )
     assert not none_free.any() and calls == [6]  # and no query without free ends

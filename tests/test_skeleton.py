@@ -7,10 +7,13 @@ Reference: for each 26-connected component (:func:`scipy.ndimage.label` with a f
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pytest
 from scipy import ndimage
 
+from vesselgeom import skeleton
 from vesselgeom.skeleton import iter_components
 
 
@@ -48,6 +51,14 @@ def _shells() -> np.ndarray:
 def test_components_match_scipy_reference(case, fill, slab, threads, monkeypatch):
     # threads: foreground and enclosed background labelled one after the other, or at the same time
     monkeypatch.setattr("vesselgeom.crosssection._THREADS", threads)
+    where = []  # the thread that labelled the enclosed background (standard library's threading)
+    real = skeleton.enclosed_background
+
+    def spy(*args, **kwargs):
+        where.append(threading.get_ident())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(skeleton, "enclosed_background", spy)
     if slab:  # labels computed in thin slabs: every few planes a seam to join across
         monkeypatch.setattr("vesselgeom.labelling._SLAB_VOXELS", slab * mask_plane(case))
     rng = np.random.default_rng(3)
@@ -59,6 +70,8 @@ def test_components_match_scipy_reference(case, fill, slab, threads, monkeypatch
     }[case]
     got = list(iter_components(mask, min_voxels=4, fill_holes=fill))
     ref = _reference(mask, 4, fill)
+    if fill and case != "empty":
+        assert len(where) == 1 and (where[0] != threading.get_ident()) == (threads == 2)
     assert len(got) == len(ref)
     for i, (comp, (offset, crop, touches)) in enumerate(zip(got, ref, strict=True), start=1):
         assert comp.component_id == i

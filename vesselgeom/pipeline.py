@@ -11,9 +11,10 @@ import os
 import platform
 import time
 import warnings
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -24,11 +25,11 @@ from .centerline import BranchInput, trace_centerlines
 from .crosssection import CrossSection
 from .errors import InputError, VesselgeomWarning
 from .exports import branch_label_volume, write_label_volume, write_vtp
-from .graph import build_graph, prune_spurs
+from .graph import SkeletonGraph, build_graph, prune_spurs
 from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
 from .io.affine import voxel_sizes
 from .measure import BranchContext
-from .packing import PACK_BATCH_VOXELS, PACK_MAX_VOXELS, trace_packed
+from .packing import PACK_BATCH_VOXELS, PACK_MAX_VOXELS, PackLayout, trace_packed
 from .qc import profile_figures, qc_figure
 from .radius import BoundaryDistance
 from .settings import Settings
@@ -46,6 +47,16 @@ __all__ = ["Result", "analyze", "analyze_volume", "CAUTION"]
 
 # branches traced and measured together (bounds the memory of traced centrelines)
 _BATCH_BRANCHES = 2048
+
+
+class _Pending(NamedTuple):
+    """A small component waiting to be traced packed with others."""
+
+    mask: np.ndarray
+    affine: np.ndarray
+    inputs: list[BranchInput]
+    contexts: list[BranchContext]
+    junctions: list[tuple]  # arguments of TableBuilder.add_junction
 
 
 @dataclass
@@ -196,28 +207,32 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
     builder = TableBuilder(settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing.max()))
     next_branch, next_node = 1, 1
 
-    # small components wait here (crop, affine, inputs, contexts, junction rows) to be traced together
-    pending: list[tuple] = []
-    pending_branches = pending_voxels = 0
+    # small components wait here to be traced together, packed side by side (vesselgeom.packing)
+    pending: list[_Pending] = []
+    pending_branches = 0
+    layout = PackLayout(volume.affine[:3, :3], voxel_mm)
 
     def flush() -> None:
-        nonlocal pending_branches, pending_voxels
+        nonlocal layout, pending_branches
         if not pending:
             return
         t0 = time.perf_counter()
         traced = trace_packed(
-            [(mask, aff, inputs) for mask, aff, inputs, _, _ in pending], voxel_mm=voxel_mm, settings=settings
+            [(p.mask, p.affine, p.inputs) for p in pending], voxel_mm=voxel_mm, settings=settings
         )
         timings["trace"] += time.perf_counter() - t0
         t0 = time.perf_counter()
         # one batch of rows for all of them, then their junctions (which need their branches' rows)
-        builder.add_branches([cl for lines in traced for cl in lines], [c for p in pending for c in p[3]])
+        builder.add_branches(
+            [cl for lines in traced for cl in lines], [c for p in pending for c in p.contexts]
+        )
         for p in pending:
-            for args in p[4]:
+            for args in p.junctions:
                 builder.add_junction(*args)
         timings["measure"] += time.perf_counter() - t0
         pending.clear()
-        pending_branches = pending_voxels = 0
+        pending_branches = 0
+        layout = PackLayout(volume.affine[:3, :3], voxel_mm)
 
     t = time.perf_counter()
     components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
@@ -254,10 +269,10 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             at_edge = free_ends_at_edge(
                 [b.path for b in graph.branches],
                 [free for _, free in kinds],
-                comp.offset,
-                boundary.at_index,
-                float(spacing.min()),
-                volume.shape,
+                offset=comp.offset,
+                radius_at=boundary.at_index,
+                voxel_mm=float(spacing.min()),
+                shape=volume.shape,
             )
         for b, (kind, free), edge in zip(graph.branches, kinds, at_edge.tolist(), strict=True):
             world = b.path @ aff[:3, :3].T + aff[:3, 3]
@@ -279,12 +294,15 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         junction_rows = _junction_args(graph, contexts, node_ids, comp.component_id, aff, boundary)
         timings["measure"] += time.perf_counter() - t
 
-        if comp.mask.size <= PACK_MAX_VOXELS:  # traced later, packed with other small components
-            pending.append((comp.mask, aff, inputs, contexts, junction_rows))
-            pending_branches += len(inputs)
-            pending_voxels += comp.mask.size
-            if pending_branches >= _BATCH_BRANCHES or pending_voxels >= PACK_BATCH_VOXELS:
+        # small components are traced later, packed with others; their k-d tree above (pruning, edge
+        # flags, junction radii: "graph") is built again for the packed array (within "trace")
+        if comp.mask.size <= PACK_MAX_VOXELS:
+            full = pending_branches + len(inputs) > _BATCH_BRANCHES
+            if full or layout.size_with(comp.mask.shape) > PACK_BATCH_VOXELS:
                 flush()
+            layout.add(comp.mask.shape)
+            pending.append(_Pending(comp.mask, aff, inputs, contexts, junction_rows))
+            pending_branches += len(inputs)
             del comp, boundary, graph, inputs, contexts, junction_rows
             t = time.perf_counter()
             continue
@@ -347,7 +365,14 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
     return Result(branches, points, junctions, run, volume)
 
 
-def _junction_args(graph, contexts, node_ids, component_id, aff, boundary) -> list[tuple]:
+def _junction_args(
+    graph: SkeletonGraph,
+    contexts: Sequence[BranchContext],
+    node_ids: dict[int, int],
+    component_id: int,
+    aff: np.ndarray,
+    boundary: BoundaryDistance,
+) -> list[tuple]:
     """Arguments of :meth:`TableBuilder.add_junction` for every junction of a component, in node order."""
     ends_at: dict[int, list[tuple[int, bool]]] = {}  # branch ends per node, in branch order
     for ctx, b in zip(contexts, graph.branches, strict=True):
@@ -378,7 +403,15 @@ def derived_values(settings: Settings, spacing: np.ndarray, min_voxels: float) -
     }
 
 
-def free_ends_at_edge(paths, frees, offset, radius_at, voxel_mm, shape) -> np.ndarray:
+def free_ends_at_edge(
+    paths: Sequence[np.ndarray],
+    frees: Sequence[Sequence[bool]],
+    *,
+    offset: np.ndarray,
+    radius_at: Callable[[np.ndarray], np.ndarray],
+    voxel_mm: float,
+    shape: Sequence[int],
+) -> np.ndarray:
     """Per branch: whether a free end lies within its own radius (+1 voxel) of the image's faces.
 
     Such an end is where the field of view cut the vessel, so the branch is truncated: its length and

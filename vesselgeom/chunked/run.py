@@ -366,10 +366,10 @@ def _plan(
             at_edge = free_ends_at_edge(
                 [b.path for b in graph.branches],
                 [free for _, free in kinds],
-                np.zeros(3),
-                radius_at,
-                float(spacing_mm.min()),
-                voxels.shape,
+                offset=np.zeros(3),
+                radius_at=radius_at,
+                voxel_mm=float(spacing_mm.min()),
+                shape=voxels.shape,
             )
         for b, (kind, free), edge in zip(graph.branches, kinds, at_edge.tolist(), strict=True):
             flags: tuple[str, ...] = ("touches_image_edge",) if edge else ()
