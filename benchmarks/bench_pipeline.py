@@ -13,8 +13,9 @@ measure: ``vesselgeom.tabulate.TableBuilder.add_branches``, i.e. ``branch_column
 ``point_columns_many``) on N branches. The branches are those
 of a fixed-seed 256^3 network, prepared as the pipeline prepares them (components, thinning, graph,
 pruning), and cycled component by component until N branches have been traced, as if the network were
-tiled N / 396 times; as in the pipeline, components with small crops (``vesselgeom.packing``) are traced
-together, packed side by side (``--no-packing``: every component alone, as before 2026-12-02 09:00).
+tiled N / 396 times; as in the pipeline, components with small crops are traced together in shared
+batches (``vesselgeom.centerline.trace_components``; ``--no-grouping``: every component alone, as
+before 2026-12-02).
 Reports time per branch; linear cost means a constant time per branch.
 
 Results are appended to ``benchmarks/results.md`` (or ``--out``) with the machine's description.
@@ -122,10 +123,9 @@ def _prepared_components():
     return out, float(np.mean(np.abs(np.diag(affine)[:3]))), settings
 
 
-def _ladder(n: int, packing: bool = True) -> dict:
-    from vesselgeom.centerline import trace_centerlines
-    from vesselgeom.packing import PACK_BATCH_VOXELS, PACK_MAX_VOXELS, PackLayout, trace_packed
-    from vesselgeom.pipeline import _BATCH_BRANCHES
+def _ladder(n: int, grouping: bool = True) -> dict:
+    from vesselgeom.centerline import trace_centerlines, trace_components
+    from vesselgeom.pipeline import _BATCH_BRANCHES, GROUP_BATCH_VOXELS, GROUP_MAX_VOXELS
     from vesselgeom.tabulate import TableBuilder
 
     comps, voxel_mm, settings = _prepared_components()
@@ -134,11 +134,8 @@ def _ladder(n: int, packing: bool = True) -> dict:
     base_rss = _peak_mb()
     trace = measure = 0.0
     done = points = 0
-    # small components wait to be traced together, with the pipeline's limits (the packed path builds
-    # its k-d tree within the timing; the path alone reuses the one built beforehand)
-    pending: list = []
-    linear = comps[0][5][:3, :3]
-    layout = PackLayout(linear, voxel_mm)
+    pending: list = []  # small components waiting to be traced together, with the pipeline's limits
+    pending_branches = pending_voxels = 0
 
     def measured(lines, contexts) -> None:
         nonlocal measure, points
@@ -148,28 +145,31 @@ def _ladder(n: int, packing: bool = True) -> dict:
         measure += time.perf_counter() - t
 
     def flush() -> None:
-        nonlocal trace, layout
+        nonlocal trace, pending_branches, pending_voxels
         if not pending:
             return
         t = time.perf_counter()
-        traced = trace_packed([(m, a, i) for m, a, i, _ in pending], voxel_mm=voxel_mm, settings=settings)
+        traced = trace_components([(s, b, i) for s, b, i, _ in pending], voxel_mm=voxel_mm, settings=settings)
         trace += time.perf_counter() - t
         measured([cl for lines in traced for cl in lines], [c for p in pending for c in p[3]])
         pending.clear()
-        layout = PackLayout(linear, voxel_mm)
+        pending_branches = pending_voxels = 0
 
     while done < n:
-        for section, boundary, inputs, contexts, crop, aff in comps:
+        for section, boundary, inputs, contexts, crop, _aff in comps:
             take = min(len(inputs), n - done)
             if take <= 0:
                 break
             done += take
-            if packing and crop.size <= PACK_MAX_VOXELS:
-                full = sum(len(p[2]) for p in pending) + take > _BATCH_BRANCHES
-                if full or layout.size_with(crop.shape) > PACK_BATCH_VOXELS:
+            if grouping and crop.size <= GROUP_MAX_VOXELS:
+                if (
+                    pending_branches + take > _BATCH_BRANCHES
+                    or pending_voxels + crop.size > GROUP_BATCH_VOXELS
+                ):
                     flush()
-                layout.add(crop.shape)
-                pending.append((crop, aff, inputs[:take], contexts[:take]))
+                pending.append((section, boundary, inputs[:take], contexts[:take]))
+                pending_branches += take
+                pending_voxels += crop.size
                 continue
             flush()
             t = time.perf_counter()
@@ -184,7 +184,7 @@ def _ladder(n: int, packing: bool = True) -> dict:
         "branches": n,
         "source_branches": source_branches,
         "points": points,
-        "packing": packing,
+        "grouping": grouping,
         "trace_s": round(trace, 2),
         "measure_s": round(measure, 2),
         "geometry_s": round(total, 2),
@@ -231,7 +231,7 @@ def main() -> None:
     ap.add_argument("--one", help=argparse.SUPPRESS)
     ap.add_argument("--one-ladder", type=int, help=argparse.SUPPRESS)
     ap.add_argument(
-        "--no-packing", action="store_true", help="ladder: trace every component alone (no packing)"
+        "--no-grouping", action="store_true", help="ladder: trace every component alone (no grouping)"
     )
     ap.add_argument("--out", default=str(HERE / "results.md"))
     ap.add_argument("--label", default="", help="a note for the results heading (e.g. 'before')")
@@ -240,7 +240,7 @@ def main() -> None:
         print(json.dumps(_network(args.one)))
         return
     if args.one_ladder:
-        print(json.dumps(_ladder(args.one_ladder, packing=not args.no_packing)))
+        print(json.dumps(_ladder(args.one_ladder, grouping=not args.no_grouping)))
         return
     lines = [f"\n## {time.strftime('%Y-%m-%d %H:%M')} {args.label}".rstrip(), f"Machine: {_machine()}.", ""]
     if args.sizes:
@@ -268,13 +268,13 @@ def main() -> None:
         ]
     prev = None
     for n in args.ladder:
-        r = _run("--one-ladder", str(n), *(["--no-packing"] if args.no_packing else []))
+        r = _run("--one-ladder", str(n), *(["--no-grouping"] if args.no_grouping else []))
         print(json.dumps(r), flush=True)
         ratio = "-"
         if prev and prev["branches"] * 10 == n:
             ratio = f"{r['geometry_s'] / prev['geometry_s']:.1f}"
         lines.append(
-            f"| {n} | {'packed' if r['packing'] else 'alone'} | {r['points']} | {r['trace_s']} | "
+            f"| {n} | {'together' if r['grouping'] else 'alone'} | {r['points']} | {r['trace_s']} | "
             f"{r['measure_s']} | {r['geometry_s']} | "
             f"{r['ms_per_branch']} | {ratio} | {r['peak_rss_mb']} |"
         )

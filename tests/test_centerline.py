@@ -232,3 +232,51 @@ def test_junction_cut_of_a_batch_equals_branch_by_branch(seed):
             np.testing.assert_array_equal(got_targets[key], node)
         if cut_radii == 1.0:  # the cases are not trivial: some ends cut, some refused
             assert 5 < len(ref_targets) < sum(not (b.free_start and b.free_end) for b in branches)
+
+
+def _network_components(seed: int = 2):
+    """(CrossSection, BoundaryDistance, branches) of every component of a small network of many parts."""
+    from vesselgeom.graph import build_graph, prune_spurs
+    from vesselgeom.phantoms import network_phantom
+    from vesselgeom.skeleton import iter_components, thin
+
+    mask, affine = network_phantom((96, 96, 96), n_trees=14, depth=3, seed=seed, spacing=(0.7, 0.8, 1.1))
+    settings = Settings()
+    out = []
+    for comp in iter_components(mask, min_voxels=settings.min_component_voxels):
+        aff = affine.copy()
+        aff[:3, 3] = affine[:3, :3] @ comp.offset + affine[:3, 3]
+        skel = thin(comp.mask)
+        if skel.sum() < 2:
+            continue
+        boundary = BoundaryDistance(comp.mask, aff)
+        graph = prune_spurs(
+            build_graph(skel), linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
+        )
+        branches = []
+        for b in graph.branches:
+            _, free = graph.branch_kind(b)
+            branches.append(BranchInput(b.path @ aff[:3, :3].T + aff[:3, 3], b.closed, free[0], free[1]))
+        out.append((CrossSection(comp.mask, aff), boundary, branches))
+    return out, float(np.mean([0.7, 0.8, 1.1])), settings
+
+
+def test_components_traced_together_equal_each_alone(monkeypatch):
+    # reference: each component's branches traced alone with its own sampler (trace_centerlines); traced
+    # together in shared batches (also small ones that split components), every bit must be the same
+    groups, voxel, settings = _network_components()
+    assert len(groups) >= 5 and sum(len(g[2]) for g in groups) >= 20
+    alone = [
+        trace_centerlines(list(br), section=sec, boundary=bd, voxel_mm=voxel, settings=settings)
+        for sec, bd, br in groups
+    ]
+    for points in (10**9, 40):
+        monkeypatch.setattr(centerline, "_BATCH_POINTS", points)
+        together = centerline.trace_components(groups, voxel_mm=voxel, settings=settings)
+        assert [len(t) for t in together] == [len(g[2]) for g in groups]
+        for ref_lines, got_lines in zip(alone, together, strict=True):
+            for a, b in zip(ref_lines, got_lines, strict=True):
+                _assert_same(a, b)
+    # not vacuous: most branches were traced, and batches did mix components
+    assert sum(cl is not None for lines in alone for cl in lines) >= 0.9 * sum(len(g[2]) for g in groups)
+    assert centerline.trace_components([], voxel_mm=voxel, settings=settings) == []

@@ -7,11 +7,14 @@ targets of the core-pipeline issue; the direction of known errors is written bes
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
 
 import vesselgeom as vg
 from vesselgeom import phantoms as P
+from vesselgeom import pipeline
 from vesselgeom.validation import Case, curve_for, run_case
 
 # radius >= 2 voxels along every axis, anisotropy up to 2:1, rotated, flipped and permuted affines
@@ -229,3 +232,35 @@ def test_free_ends_at_edge_follows_its_definition():
         paths, [(False, False)] * 5, offset=np.zeros(3), radius_at=radius_at, voxel_mm=0.5, shape=(20, 30, 40)
     )
     assert not none_free.any() and calls == [6]  # and no query without free ends
+
+
+@pytest.mark.parametrize("batch", ["default", "small batches"])
+def test_small_components_traced_together_give_the_same_tables(monkeypatch, batch):
+    # reference: the same mask analysed with every component traced alone (grouping switched off):
+    # the three tables must be identical (pandas' DataFrame.equals). "small batches": the limits are
+    # lowered so that groups are flushed while components are still coming, not only before a large
+    # component and at the end.
+    mask, affine = P.network_phantom((96, 96, 96), n_trees=14, depth=3, seed=2, spacing=(0.7, 0.8, 1.1))
+    calls = []
+    real = pipeline.trace_components
+
+    def spy(groups, **kw):
+        calls.append(len(groups))
+        return real(groups, **kw)
+
+    monkeypatch.setattr(pipeline, "trace_components", spy)
+    if batch == "small batches":
+        monkeypatch.setattr(pipeline, "GROUP_BATCH_VOXELS", 30_000)
+        monkeypatch.setattr(pipeline, "_BATCH_BRANCHES", 3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", vg.VesselgeomWarning)
+        together = vg.analyze(mask, affine=affine)
+        n_calls = list(calls)
+        monkeypatch.setattr(pipeline, "GROUP_MAX_VOXELS", 0)
+        alone = vg.analyze(mask, affine=affine)
+    assert sum(n_calls) >= 5 and calls == n_calls  # grouped, then not at all
+    if batch == "small batches":
+        assert len(n_calls) >= 3
+    assert together.branches["component_id"].nunique() >= 5
+    for table in ("branches", "points", "junctions"):
+        assert getattr(together, table).equals(getattr(alone, table)), table

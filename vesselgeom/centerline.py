@@ -8,6 +8,8 @@ radius at every sample. Branches of a component are processed together in batche
 
 from __future__ import annotations
 
+import dataclasses
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -18,7 +20,7 @@ from .radius import BoundaryDistance
 from .settings import Settings
 from .spline import CurveFit, CurvePack, _fit_packed, _linspace, arc_length_samples_many, fit_curves
 
-__all__ = ["Centerline", "BranchInput", "trace_centerlines"]
+__all__ = ["Centerline", "BranchInput", "trace_centerlines", "trace_components"]
 
 # bounds on one batch of trace_centerlines: its temporaries grow with the points traced at once
 _BATCH_POINTS = 8_000
@@ -30,13 +32,15 @@ class BranchInput:
     """One branch to trace: an ordered polyline in world mm and what its ends are.
 
     ``free_start`` / ``free_end`` mark terminal (blind) ends, which thinning retracts and which are
-    extended back; ends at junctions are not extended.
+    extended back; ends at junctions are not extended. ``owner`` says which component's mask and radius
+    function the branch is traced in when several are traced together (:func:`trace_components`).
     """
 
     path: np.ndarray
     closed: bool
     free_start: bool
     free_end: bool
+    owner: int = 0
 
 
 @dataclass(frozen=True)
@@ -136,12 +140,58 @@ def _group_median(values: np.ndarray, gid: np.ndarray, n: int) -> np.ndarray:
     return out
 
 
+class _Samplers:
+    """Each branch's mask sampler and radius function: those of its component (``BranchInput.owner``).
+
+    With one component every call goes straight to its sampler. With several, the points of each
+    component are sent to that component's sampler and the results put back in order; every point's
+    result is independent of the other points of a call (:class:`CrossSection`,
+    :class:`BoundaryDistance`), so a branch gets the same bits as when its component is traced alone.
+    """
+
+    def __init__(self, sections: Mapping[int, CrossSection], boundaries: Mapping[int, BoundaryDistance]):
+        self._sections = dict(sections)
+        self._boundaries = dict(boundaries)
+        self._single = len(self._sections) == 1
+
+    def _groups(self, owner: np.ndarray) -> list[tuple[int, np.ndarray]]:
+        order = np.argsort(owner, kind="stable")
+        keys, first = np.unique(owner[order], return_index=True)
+        bounds = np.r_[first, len(order)]
+        return [(int(k), order[a:b]) for k, a, b in zip(keys, bounds[:-1], bounds[1:], strict=True)]
+
+    def radius(self, points: np.ndarray, owner: np.ndarray) -> np.ndarray:
+        if self._single:
+            return next(iter(self._boundaries.values()))(points)
+        out = np.empty(len(points))
+        for key, idx in self._groups(owner):
+            out[idx] = self._boundaries[key](points[idx])
+        return out
+
+    def sample(self, points: np.ndarray, owner: np.ndarray) -> np.ndarray:
+        if self._single:
+            return next(iter(self._sections.values())).sample(points)
+        out = np.empty(len(points), np.float32)
+        for key, idx in self._groups(owner):
+            out[idx] = self._sections[key].sample(points[idx])
+        return out
+
+    def centroids(
+        self, centres: np.ndarray, tangents: np.ndarray, disc: np.ndarray, owner: np.ndarray
+    ) -> np.ndarray:
+        if self._single:
+            return next(iter(self._sections.values())).centroids(centres, tangents, disc)[0]
+        out = np.empty_like(centres)
+        for key, idx in self._groups(owner):
+            out[idx] = self._sections[key].centroids(centres[idx], tangents[idx], disc[idx])[0]
+        return out
+
+
 def _extend_free_ends_many(
     pack: CurvePack,
     branches: list[BranchInput],
     scales: np.ndarray,
-    section: CrossSection,
-    boundary: BoundaryDistance,
+    samplers: _Samplers,
     voxel: float,
     settings: Settings,
     targets: dict[tuple[int, int], np.ndarray] | None = None,
@@ -179,14 +229,15 @@ def _extend_free_ends_many(
     u_a = np.clip(u_end + sign * scales[bi], u0, u1)
     p_a, d_a = pack.derivatives(bi, u_a, (0, 1))
     direction = -sign[:, None] * _unit(d_a)
-    r_a = boundary(p_a)
+    owner = np.array([branches[i].owner for i in bi.tolist()], np.int64)
+    r_a = samplers.radius(p_a, owner)
     reach = np.abs(u_end - u_a) + 8.0 * np.maximum(r_a, voxel)
     # rays of samples every quarter voxel, all ends at once (as np.arange(0, reach + dq, dq))
     dq = 0.25 * voxel
     n_s = np.ceil((reach + dq - 0.0) / dq).astype(np.intp)
     e_of = np.repeat(np.arange(len(ends)), n_s)
     d = (np.arange(len(e_of)) - np.repeat(np.cumsum(n_s) - n_s, n_s)) * dq
-    vals = section.sample(p_a[e_of] + d[:, None] * direction[e_of])
+    vals = samplers.sample(p_a[e_of] + d[:, None] * direction[e_of], owner[e_of])
     start = np.cumsum(n_s) - n_s
     outside = np.where(vals < 0.5, np.arange(len(vals)), len(vals))
     first_out = np.minimum.reduceat(outside, start)
@@ -359,16 +410,57 @@ def trace_centerlines(
     list of Centerline or None
         One per branch, in order.
     """
+    samplers = _Samplers({0: section}, {0: boundary})  # one component: the owners are not looked at
     out: list[Centerline | None] = []
     for sl in _batches(branches):
-        out.extend(_trace_batch(branches[sl], section, boundary, voxel_mm, settings))
+        out.extend(_trace_batch(branches[sl], samplers, voxel_mm, settings))
+    return out
+
+
+def trace_components(
+    groups: Sequence[tuple[CrossSection, BoundaryDistance, Sequence[BranchInput]]],
+    *,
+    voxel_mm: float,
+    settings: Settings,
+) -> list[list[Centerline | None]]:
+    """Trace the branches of several components in shared batches; one list of centrelines per component.
+
+    Tracing has a fixed cost per batch (a few thousand numpy calls, ~10 ms) besides its cost per
+    branch, so a mask of thousands of small components would spend most of its time on it traced
+    component by component (4,080 one-branch fragments: 47 s of tracing, ``benchmarks/results.md``).
+    Here the branches of all ``groups`` share batches; each point is sampled in its own component's
+    mask and radius function, so every branch's result is the same, bit for bit, as with
+    :func:`trace_centerlines` on its component alone (``tests/test_centerline.py``).
+
+    Parameters
+    ----------
+    groups : sequence of (CrossSection, BoundaryDistance, branches)
+        Per component: its mask sampler, its radius function and its branches (world mm).
+    voxel_mm, settings
+        As for :func:`trace_centerlines`.
+
+    Returns
+    -------
+    list of lists
+        For each group, its branches' centrelines (None where tracing failed), in order.
+    """
+    samplers = _Samplers(
+        {g: grp[0] for g, grp in enumerate(groups)}, {g: grp[1] for g, grp in enumerate(groups)}
+    )
+    branches = [dataclasses.replace(b, owner=g) for g, grp in enumerate(groups) for b in grp[2]]
+    lines: list[Centerline | None] = []
+    for sl in _batches(branches):
+        lines.extend(_trace_batch(branches[sl], samplers, voxel_mm, settings))
+    out, at = [], 0
+    for grp in groups:
+        out.append(lines[at : at + len(grp[2])])
+        at += len(grp[2])
     return out
 
 
 def _trace_batch(
     branches: list[BranchInput],
-    section: CrossSection,
-    boundary: BoundaryDistance,
+    samplers: _Samplers,
     voxel_mm: float,
     settings: Settings,
 ) -> list[Centerline | None]:
@@ -378,8 +470,9 @@ def _trace_batch(
         return []
     step = settings.step_mm or settings.step_voxels * voxel_mm
     lens = np.array([len(b.path) for b in branches])
-    r_flat = boundary(np.concatenate([b.path for b in branches]))
+    owner = np.array([b.owner for b in branches], np.int64)
     g_flat = np.repeat(np.arange(nb), lens)
+    r_flat = samplers.radius(np.concatenate([b.path for b in branches]), owner[g_flat])
     # median radius of each branch, leaving out its end points when it has more than four
     j_flat = np.arange(len(g_flat)) - np.repeat(np.cumsum(lens) - lens, lens)
     inner = (lens[g_flat] <= 4) | ((j_flat > 0) & (j_flat < lens[g_flat] - 1))
@@ -408,9 +501,9 @@ def _trace_batch(
             break
         centres, d1 = pack.derivatives(g, u, (0, 1))
         tangents = _unit(d1)
-        rad = boundary(centres)
+        rad = samplers.radius(centres, owner[g])
         disc = 1.5 * np.maximum(rad, voxel_mm) + voxel_mm
-        moved, _ = section.centroids(centres, tangents, disc)
+        moved = samplers.centroids(centres, tangents, disc, owner[g])
         refits = _fit_packed(moved, np.bincount(g, minlength=nb), smoothing, closed)
         fits = [
             new if (old is not None and new is not None) else old
@@ -418,9 +511,7 @@ def _trace_batch(
         ]
 
     pack = CurvePack(fits)
-    fits, ext = _extend_free_ends_many(
-        pack, branches, scales, section, boundary, voxel_mm, settings, targets=targets
-    )
+    fits, ext = _extend_free_ends_many(pack, branches, scales, samplers, voxel_mm, settings, targets=targets)
     pack = CurvePack(fits)
     gid, arc, _u, r, d1, d2, d3 = arc_length_samples_many(pack, step)
     floor = settings.curvature_floor_per_voxel / voxel_mm
@@ -437,7 +528,7 @@ def _trace_batch(
     tau = frenet_frame(*spack.derivatives(gid[has], a, (1, 2, 3))).torsion
     torsion = frame.torsion.copy()
     torsion[has] = np.where(np.isfinite(frame.torsion[has]), tau, np.nan)
-    radius = boundary(r)
+    radius = samplers.radius(r, owner[gid])
 
     bounds = np.r_[0, np.cumsum(np.bincount(gid, minlength=nb))]
     out: list[Centerline | None] = []

@@ -21,7 +21,7 @@ import pandas as pd
 
 from . import __version__
 from .caution import CAUTION
-from .centerline import BranchInput, trace_centerlines
+from .centerline import BranchInput, trace_centerlines, trace_components
 from .crosssection import CrossSection
 from .errors import InputError, VesselgeomWarning
 from .exports import branch_label_volume, write_label_volume, write_vtp
@@ -29,7 +29,6 @@ from .graph import SkeletonGraph, build_graph, prune_spurs
 from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
 from .io.affine import voxel_sizes
 from .measure import BranchContext
-from .packing import PACK_BATCH_VOXELS, PACK_MAX_VOXELS, PackLayout, trace_packed
 from .qc import profile_figures, qc_figure
 from .radius import BoundaryDistance
 from .settings import Settings
@@ -47,13 +46,17 @@ __all__ = ["Result", "analyze", "analyze_volume", "CAUTION"]
 
 # branches traced and measured together (bounds the memory of traced centrelines)
 _BATCH_BRANCHES = 2048
+# components whose crop holds at most this many voxels (64^3) are traced together with others, in
+# batches of at most _BATCH_BRANCHES branches and this many crop voxels held (16 Mi, 16 MB)
+GROUP_MAX_VOXELS = 64**3
+GROUP_BATCH_VOXELS = 16 * 2**20
 
 
 class _Pending(NamedTuple):
-    """A small component waiting to be traced packed with others."""
+    """A small component waiting to be traced together with others."""
 
-    mask: np.ndarray
-    affine: np.ndarray
+    section: CrossSection
+    boundary: BoundaryDistance
     inputs: list[BranchInput]
     contexts: list[BranchContext]
     junctions: list[tuple]  # arguments of TableBuilder.add_junction
@@ -207,18 +210,17 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
     builder = TableBuilder(settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing.max()))
     next_branch, next_node = 1, 1
 
-    # small components wait here to be traced together, packed side by side (vesselgeom.packing)
+    # small components wait here to be traced together (one shared batch instead of one per component)
     pending: list[_Pending] = []
-    pending_branches = 0
-    layout = PackLayout(volume.affine[:3, :3], voxel_mm)
+    pending_branches = pending_voxels = 0
 
     def flush() -> None:
-        nonlocal layout, pending_branches
+        nonlocal pending_branches, pending_voxels
         if not pending:
             return
         t0 = time.perf_counter()
-        traced = trace_packed(
-            [(p.mask, p.affine, p.inputs) for p in pending], voxel_mm=voxel_mm, settings=settings
+        traced = trace_components(
+            [(p.section, p.boundary, p.inputs) for p in pending], voxel_mm=voxel_mm, settings=settings
         )
         timings["trace"] += time.perf_counter() - t0
         t0 = time.perf_counter()
@@ -231,8 +233,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
                 builder.add_junction(*args)
         timings["measure"] += time.perf_counter() - t0
         pending.clear()
-        pending_branches = 0
-        layout = PackLayout(volume.affine[:3, :3], voxel_mm)
+        pending_branches = pending_voxels = 0
 
     t = time.perf_counter()
     components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
@@ -294,15 +295,15 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         junction_rows = _junction_args(graph, contexts, node_ids, comp.component_id, aff, boundary)
         timings["measure"] += time.perf_counter() - t
 
-        # small components are traced later, packed with others; their k-d tree above (pruning, edge
-        # flags, junction radii: "graph") is built again for the packed array (within "trace")
-        if comp.mask.size <= PACK_MAX_VOXELS:
-            full = pending_branches + len(inputs) > _BATCH_BRANCHES
-            if full or layout.size_with(comp.mask.shape) > PACK_BATCH_VOXELS:
+        if comp.mask.size <= GROUP_MAX_VOXELS:  # traced later, together with other small components
+            if (
+                pending_branches + len(inputs) > _BATCH_BRANCHES
+                or pending_voxels + comp.mask.size > GROUP_BATCH_VOXELS
+            ):
                 flush()
-            layout.add(comp.mask.shape)
-            pending.append(_Pending(comp.mask, aff, inputs, contexts, junction_rows))
+            pending.append(_Pending(CrossSection(comp.mask, aff), boundary, inputs, contexts, junction_rows))
             pending_branches += len(inputs)
+            pending_voxels += comp.mask.size
             del comp, boundary, graph, inputs, contexts, junction_rows
             t = time.perf_counter()
             continue
