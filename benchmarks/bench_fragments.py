@@ -52,8 +52,8 @@ def main() -> None:
 
     mask = fragments(args.cells)
     runs = {}
-    for name, limit in (("together", pipeline.GROUP_MAX_VOXELS), ("alone", 0)):
-        pipeline.GROUP_MAX_VOXELS = limit
+    for name, limit in (("together", pipeline._GROUP_MAX_VOXELS), ("alone", 0)):
+        pipeline._GROUP_MAX_VOXELS = limit
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", VesselgeomWarning)  # fragments that thin to a point
             t = time.perf_counter()

@@ -125,7 +125,7 @@ def _prepared_components():
 
 def _ladder(n: int, grouping: bool = True) -> dict:
     from vesselgeom.centerline import trace_centerlines, trace_components
-    from vesselgeom.pipeline import _BATCH_BRANCHES, GROUP_BATCH_VOXELS, GROUP_MAX_VOXELS
+    from vesselgeom.pipeline import _BATCH_BRANCHES, _GROUP_BYTES, _GROUP_MAX_VOXELS
     from vesselgeom.tabulate import TableBuilder
 
     comps, voxel_mm, settings = _prepared_components()
@@ -135,7 +135,7 @@ def _ladder(n: int, grouping: bool = True) -> dict:
     trace = measure = 0.0
     done = points = 0
     pending: list = []  # small components waiting to be traced together, with the pipeline's limits
-    pending_branches = pending_voxels = 0
+    pending_branches = pending_bytes = 0
 
     def measured(lines, contexts) -> None:
         nonlocal measure, points
@@ -145,7 +145,7 @@ def _ladder(n: int, grouping: bool = True) -> dict:
         measure += time.perf_counter() - t
 
     def flush() -> None:
-        nonlocal trace, pending_branches, pending_voxels
+        nonlocal trace, pending_branches, pending_bytes
         if not pending:
             return
         t = time.perf_counter()
@@ -153,7 +153,7 @@ def _ladder(n: int, grouping: bool = True) -> dict:
         trace += time.perf_counter() - t
         measured([cl for lines in traced for cl in lines], [c for p in pending for c in p[3]])
         pending.clear()
-        pending_branches = pending_voxels = 0
+        pending_branches = pending_bytes = 0
 
     while done < n:
         for section, boundary, inputs, contexts, crop, _aff in comps:
@@ -161,15 +161,13 @@ def _ladder(n: int, grouping: bool = True) -> dict:
             if take <= 0:
                 break
             done += take
-            if grouping and crop.size <= GROUP_MAX_VOXELS:
-                if (
-                    pending_branches + take > _BATCH_BRANCHES
-                    or pending_voxels + crop.size > GROUP_BATCH_VOXELS
-                ):
+            if grouping and crop.size <= _GROUP_MAX_VOXELS and take <= _BATCH_BRANCHES:
+                held = crop.nbytes + boundary.nbytes
+                if pending_branches + take > _BATCH_BRANCHES or pending_bytes + held > _GROUP_BYTES:
                     flush()
                 pending.append((section, boundary, inputs[:take], contexts[:take]))
                 pending_branches += take
-                pending_voxels += crop.size
+                pending_bytes += held
                 continue
             flush()
             t = time.perf_counter()

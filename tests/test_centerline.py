@@ -1,9 +1,11 @@
-"""Tests for vesselgeom.centerline.trace_centerlines: batching and threads leave every result unchanged.
+"""Tests for vesselgeom.centerline: batching, threads and tracing components together change no result.
 
 Independent references used below:
 - Each branch's trace depends only on that branch, the mask and the settings (the contract stated in
   :func:`vesselgeom.centerline.trace_centerlines`), so the reference for a branch traced in a batch is
-  the same branch traced alone, and results must match bit for bit.
+  the same branch traced alone, and results must match bit for bit; likewise for branches of several
+  components traced together (:func:`vesselgeom.centerline.trace_components`), whose reference is
+  each component traced alone.
 - Straight tubes of the tree phantom have the analytic length of :func:`vesselgeom.phantoms.straight`
   (the distance between the end points); traced lengths of the free (terminal) branches are compared
   with it.
@@ -234,13 +236,19 @@ def test_junction_cut_of_a_batch_equals_branch_by_branch(seed):
             assert 5 < len(ref_targets) < sum(not (b.free_start and b.free_end) for b in branches)
 
 
-def _network_components(seed: int = 2):
-    """(CrossSection, BoundaryDistance, branches) of every component of a small network of many parts."""
+def _network_components(seed: int = 2, oblique: bool = False):
+    """(CrossSection, BoundaryDistance, branches) of every component of a small network of many parts.
+
+    ``oblique``: the same voxels on rotated axes (a rotated, anisotropic affine).
+    """
     from vesselgeom.graph import build_graph, prune_spurs
     from vesselgeom.phantoms import network_phantom
     from vesselgeom.skeleton import iter_components, thin
 
     mask, affine = network_phantom((96, 96, 96), n_trees=14, depth=3, seed=seed, spacing=(0.7, 0.8, 1.1))
+    if oblique:
+        affine = affine.copy()
+        affine[:3, :3] = random_rotation(seed) @ np.diag([0.7, 0.8, 1.1])
     settings = Settings()
     out = []
     for comp in iter_components(mask, min_voxels=settings.min_component_voxels):
@@ -261,22 +269,37 @@ def _network_components(seed: int = 2):
     return out, float(np.mean([0.7, 0.8, 1.1])), settings
 
 
-def test_components_traced_together_equal_each_alone(monkeypatch):
+@pytest.mark.parametrize("oblique", [False, True])
+def test_components_traced_together_equal_each_alone(monkeypatch, oblique):
     # reference: each component's branches traced alone with its own sampler (trace_centerlines); traced
     # together in shared batches (also small ones that split components), every bit must be the same
-    groups, voxel, settings = _network_components()
+    groups, voxel, settings = _network_components(oblique=oblique)
     assert len(groups) >= 5 and sum(len(g[2]) for g in groups) >= 20
     alone = [
         trace_centerlines(list(br), section=sec, boundary=bd, voxel_mm=voxel, settings=settings)
         for sec, bd, br in groups
     ]
+    owners_per_batch = []
+    real = centerline._trace_batch
+
+    def spy(branches, *args):
+        owners_per_batch.append({b.owner for b in branches})
+        return real(branches, *args)
+
+    monkeypatch.setattr(centerline, "_trace_batch", spy)
     for points in (10**9, 40):
         monkeypatch.setattr(centerline, "_BATCH_POINTS", points)
+        owners_per_batch.clear()
         together = centerline.trace_components(groups, voxel_mm=voxel, settings=settings)
+        if points == 10**9:  # one batch mixes the components
+            assert max(len(o) for o in owners_per_batch) >= 2
+        else:  # small batches split a component over several
+            seen = [o for batch in owners_per_batch for o in batch]
+            assert len(seen) > len(set(seen))
         assert [len(t) for t in together] == [len(g[2]) for g in groups]
         for ref_lines, got_lines in zip(alone, together, strict=True):
             for a, b in zip(ref_lines, got_lines, strict=True):
                 _assert_same(a, b)
-    # not vacuous: most branches were traced, and batches did mix components
+    # not vacuous: most branches were traced
     assert sum(cl is not None for lines in alone for cl in lines) >= 0.9 * sum(len(g[2]) for g in groups)
     assert centerline.trace_components([], voxel_mm=voxel, settings=settings) == []

@@ -238,29 +238,35 @@ def test_free_ends_at_edge_follows_its_definition():
 def test_small_components_traced_together_give_the_same_tables(monkeypatch, batch):
     # reference: the same mask analysed with every component traced alone (grouping switched off):
     # the three tables must be identical (pandas' DataFrame.equals). "small batches": the limits are
-    # lowered so that groups are flushed while components are still coming, not only before a large
-    # component and at the end.
+    # lowered so that groups are cut by them while components are still coming, not only before a
+    # large component and at the end.
     mask, affine = P.network_phantom((96, 96, 96), n_trees=14, depth=3, seed=2, spacing=(0.7, 0.8, 1.1))
-    calls = []
+    calls = []  # per call: (components, branches, bytes held)
     real = pipeline.trace_components
 
     def spy(groups, **kw):
-        calls.append(len(groups))
+        held = sum(sec._data.nbytes + bd.nbytes for sec, bd, _ in groups)
+        calls.append((len(groups), sum(len(br) for _, _, br in groups), held))
         return real(groups, **kw)
 
     monkeypatch.setattr(pipeline, "trace_components", spy)
     if batch == "small batches":
-        monkeypatch.setattr(pipeline, "GROUP_BATCH_VOXELS", 30_000)
+        monkeypatch.setattr(pipeline, "_GROUP_BYTES", 120_000)
         monkeypatch.setattr(pipeline, "_BATCH_BRANCHES", 3)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", vg.VesselgeomWarning)
         together = vg.analyze(mask, affine=affine)
-        n_calls = list(calls)
-        monkeypatch.setattr(pipeline, "GROUP_MAX_VOXELS", 0)
+        grouped = list(calls)
+        monkeypatch.setattr(pipeline, "_GROUP_MAX_VOXELS", 0)
         alone = vg.analyze(mask, affine=affine)
-    assert sum(n_calls) >= 5 and calls == n_calls  # grouped, then not at all
+    assert sum(c[0] for c in grouped) >= 5 and calls == grouped  # grouped, then not at all
     if batch == "small batches":
-        assert len(n_calls) >= 3
+        # every group within the limits unless it is a single component; some cut by them
+        assert all(c[0] == 1 or (c[1] <= 3 and c[2] <= 120_000) for c in grouped)
+        assert len(grouped) >= 3 and any(c[0] > 1 for c in grouped)
+    else:
+        assert max(c[0] for c in grouped) >= 5  # several components in one call
     assert together.branches["component_id"].nunique() >= 5
+    assert len(together.junctions) > 0 and together.junctions["component_id"].nunique() >= 2
     for table in ("branches", "points", "junctions"):
         assert getattr(together, table).equals(getattr(alone, table)), table

@@ -3,14 +3,14 @@
 Per branch: fit a penalised quintic spline (smoothing tied to the vessel radius), recentre points
 sampled along it on the mask's cross-section, refit, repeat; extend terminal ends that thinning
 retracted; resample at a fixed arc-length step; compute the Frenet-Serret frame, curvature, torsion and
-radius at every sample. Branches of a component are processed together in batches of bounded size.
+radius at every sample. Branches of a component (or of several small components,
+:func:`trace_components`) are processed together in batches of bounded size.
 """
 
 from __future__ import annotations
 
-import dataclasses
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -32,8 +32,8 @@ class BranchInput:
     """One branch to trace: an ordered polyline in world mm and what its ends are.
 
     ``free_start`` / ``free_end`` mark terminal (blind) ends, which thinning retracts and which are
-    extended back; ends at junctions are not extended. ``owner`` says which component's mask and radius
-    function the branch is traced in when several are traced together (:func:`trace_components`).
+    extended back; ends at junctions are not extended. ``owner`` is set by :func:`trace_components` (the
+    branch's component among those traced together) and ignored by :func:`trace_centerlines`.
     """
 
     path: np.ndarray
@@ -149,12 +149,18 @@ class _Samplers:
     :class:`BoundaryDistance`), so a branch gets the same bits as when its component is traced alone.
     """
 
-    def __init__(self, sections: Mapping[int, CrossSection], boundaries: Mapping[int, BoundaryDistance]):
+    def __init__(
+        self, sections: Mapping[int, CrossSection], boundaries: Mapping[int, BoundaryDistance]
+    ) -> None:
         self._sections = dict(sections)
         self._boundaries = dict(boundaries)
         self._single = len(self._sections) == 1
 
-    def _groups(self, owner: np.ndarray) -> list[tuple[int, np.ndarray]]:
+    def _groups(self, owner: np.ndarray) -> list[tuple[int, np.ndarray | slice]]:
+        """(owner, the rows of its points) for every owner present."""
+        if len(owner) and np.all(owner[1:] >= owner[:-1]):  # usual: points in branch order, by owner
+            bounds = np.r_[0, np.flatnonzero(np.diff(owner)) + 1, len(owner)]
+            return [(int(owner[a]), slice(a, b)) for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
         order = np.argsort(owner, kind="stable")
         keys, first = np.unique(owner[order], return_index=True)
         bounds = np.r_[first, len(order)]
@@ -181,7 +187,7 @@ class _Samplers:
     ) -> np.ndarray:
         if self._single:
             return next(iter(self._sections.values())).centroids(centres, tangents, disc)[0]
-        out = np.empty_like(centres)
+        out = np.empty((len(centres), 3))
         for key, idx in self._groups(owner):
             out[idx] = self._sections[key].centroids(centres[idx], tangents[idx], disc[idx])[0]
         return out
@@ -447,7 +453,7 @@ def trace_components(
     samplers = _Samplers(
         {g: grp[0] for g, grp in enumerate(groups)}, {g: grp[1] for g, grp in enumerate(groups)}
     )
-    branches = [dataclasses.replace(b, owner=g) for g, grp in enumerate(groups) for b in grp[2]]
+    branches = [replace(b, owner=g) for g, grp in enumerate(groups) for b in grp[2]]
     lines: list[Centerline | None] = []
     for sl in _batches(branches):
         lines.extend(_trace_batch(branches[sl], samplers, voxel_mm, settings))

@@ -46,10 +46,11 @@ __all__ = ["Result", "analyze", "analyze_volume", "CAUTION"]
 
 # branches traced and measured together (bounds the memory of traced centrelines)
 _BATCH_BRANCHES = 2048
-# components whose crop holds at most this many voxels (64^3) are traced together with others, in
-# batches of at most _BATCH_BRANCHES branches and this many crop voxels held (16 Mi, 16 MB)
-GROUP_MAX_VOXELS = 64**3
-GROUP_BATCH_VOXELS = 16 * 2**20
+# components whose crop holds at most this many voxels (64^3) and that have at most _BATCH_BRANCHES
+# branches are traced together with others (centerline.trace_components), in groups of at most
+# _BATCH_BRANCHES branches whose crops and k-d trees held meanwhile take at most _GROUP_BYTES (32 MiB)
+_GROUP_MAX_VOXELS = 64**3
+_GROUP_BYTES = 32 * 2**20
 
 
 class _Pending(NamedTuple):
@@ -212,10 +213,10 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
 
     # small components wait here to be traced together (one shared batch instead of one per component)
     pending: list[_Pending] = []
-    pending_branches = pending_voxels = 0
+    pending_branches = pending_bytes = 0
 
     def flush() -> None:
-        nonlocal pending_branches, pending_voxels
+        nonlocal pending_branches, pending_bytes
         if not pending:
             return
         t0 = time.perf_counter()
@@ -233,7 +234,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
                 builder.add_junction(*args)
         timings["measure"] += time.perf_counter() - t0
         pending.clear()
-        pending_branches = pending_voxels = 0
+        pending_branches = pending_bytes = 0
 
     t = time.perf_counter()
     components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
@@ -295,15 +296,16 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         junction_rows = _junction_args(graph, contexts, node_ids, comp.component_id, aff, boundary)
         timings["measure"] += time.perf_counter() - t
 
-        if comp.mask.size <= GROUP_MAX_VOXELS:  # traced later, together with other small components
-            if (
-                pending_branches + len(inputs) > _BATCH_BRANCHES
-                or pending_voxels + comp.mask.size > GROUP_BATCH_VOXELS
-            ):
+        if comp.mask.size <= _GROUP_MAX_VOXELS and len(inputs) <= _BATCH_BRANCHES:
+            # traced later, together with other small components
+            held = comp.mask.nbytes + boundary.nbytes
+            if pending_branches + len(inputs) > _BATCH_BRANCHES or pending_bytes + held > _GROUP_BYTES:
                 flush()
+            t = time.perf_counter()
             pending.append(_Pending(CrossSection(comp.mask, aff), boundary, inputs, contexts, junction_rows))
+            timings["trace"] += time.perf_counter() - t
             pending_branches += len(inputs)
-            pending_voxels += comp.mask.size
+            pending_bytes += held
             del comp, boundary, graph, inputs, contexts, junction_rows
             t = time.perf_counter()
             continue

@@ -86,6 +86,13 @@ class BoundaryDistance:
         # defaults for boundary voxels; the tree's shape does not change any distance
         self._tree = cKDTree(pts, leafsize=64, balanced_tree=False) if len(pts) else None
 
+    @property
+    def nbytes(self) -> int:
+        """Bytes held by the k-d tree (its points and their index: 32 per outer boundary voxel)."""
+        if self._tree is None:
+            return 0
+        return int(self._tree.data.nbytes + self._tree.indices.nbytes)
+
     def __call__(self, points_mm: np.ndarray) -> np.ndarray:
         """Distances in mm for (n, 3) world points; NaN when the mask has no boundary."""
         pts = np.asarray(points_mm, float).reshape(-1, 3)
