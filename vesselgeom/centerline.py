@@ -433,7 +433,8 @@ def trace_components(
 
     Tracing has a fixed cost per batch (a few thousand numpy calls, ~10 ms) besides its cost per
     branch, so a mask of thousands of small components would spend most of its time on it traced
-    component by component (4,080 one-branch fragments: 47 s of tracing, ``benchmarks/results.md``).
+    component by component (4,080 one-branch fragments: 40-47 s of tracing alone, 6-9 s together;
+    ``benchmarks/results.md``).
     Here the branches of all ``groups`` share batches; each point is sampled in its own component's
     mask and radius function, so every branch's result is the same, bit for bit, as with
     :func:`trace_centerlines` on its component alone (``tests/test_centerline.py``).
