@@ -125,7 +125,7 @@ def _prepared_components():
 
 def _ladder(n: int, grouping: bool = True) -> dict:
     from vesselgeom.centerline import trace_centerlines, trace_components
-    from vesselgeom.pipeline import _BATCH_BRANCHES, _GROUP_BYTES, _GROUP_MAX_VOXELS
+    from vesselgeom.pipeline import _Group
     from vesselgeom.tabulate import TableBuilder
 
     comps, voxel_mm, settings = _prepared_components()
@@ -134,8 +134,7 @@ def _ladder(n: int, grouping: bool = True) -> dict:
     base_rss = _peak_mb()
     trace = measure = 0.0
     done = points = 0
-    pending: list = []  # small components waiting to be traced together, with the pipeline's limits
-    pending_branches = pending_bytes = 0
+    group = _Group()  # small components waiting to be traced together, with the pipeline's limits
 
     def measured(lines, contexts) -> None:
         nonlocal measure, points
@@ -145,15 +144,14 @@ def _ladder(n: int, grouping: bool = True) -> dict:
         measure += time.perf_counter() - t
 
     def flush() -> None:
-        nonlocal trace, pending_branches, pending_bytes
+        nonlocal trace
+        pending = group.take()
         if not pending:
             return
         t = time.perf_counter()
         traced = trace_components([(s, b, i) for s, b, i, _ in pending], voxel_mm=voxel_mm, settings=settings)
         trace += time.perf_counter() - t
         measured([cl for lines in traced for cl in lines], [c for p in pending for c in p[3]])
-        pending.clear()
-        pending_branches = pending_bytes = 0
 
     while done < n:
         for section, boundary, inputs, contexts, crop, _aff in comps:
@@ -161,13 +159,11 @@ def _ladder(n: int, grouping: bool = True) -> dict:
             if take <= 0:
                 break
             done += take
-            if grouping and crop.size <= _GROUP_MAX_VOXELS and take <= _BATCH_BRANCHES:
+            if grouping and _Group.admits(crop, take):
                 held = crop.nbytes + boundary.nbytes
-                if pending_branches + take > _BATCH_BRANCHES or pending_bytes + held > _GROUP_BYTES:
+                if group.full_with(take, held):
                     flush()
-                pending.append((section, boundary, inputs[:take], contexts[:take]))
-                pending_branches += take
-                pending_bytes += held
+                group.add((section, boundary, inputs[:take], contexts[:take]), take, held)
                 continue
             flush()
             t = time.perf_counter()

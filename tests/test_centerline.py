@@ -18,11 +18,12 @@ import tracemalloc
 
 import numpy as np
 import pytest
+from _prepared import prepared_components
 
 from vesselgeom import centerline, crosssection
 from vesselgeom.centerline import BranchInput, trace_centerlines
 from vesselgeom.crosssection import CrossSection
-from vesselgeom.phantoms import random_rotation, tree_phantom
+from vesselgeom.phantoms import network_phantom, random_rotation, tree_phantom
 from vesselgeom.radius import BoundaryDistance
 from vesselgeom.settings import Settings
 
@@ -241,31 +242,15 @@ def _network_components(seed: int = 2, oblique: bool = False):
 
     ``oblique``: the same voxels on rotated axes (a rotated, anisotropic affine).
     """
-    from vesselgeom.graph import build_graph, prune_spurs
-    from vesselgeom.phantoms import network_phantom
-    from vesselgeom.skeleton import iter_components, thin
-
     mask, affine = network_phantom((96, 96, 96), n_trees=14, depth=3, seed=seed, spacing=(0.7, 0.8, 1.1))
     if oblique:
         affine = affine.copy()
         affine[:3, :3] = random_rotation(seed) @ np.diag([0.7, 0.8, 1.1])
     settings = Settings()
-    out = []
-    for comp in iter_components(mask, min_voxels=settings.min_component_voxels):
-        aff = affine.copy()
-        aff[:3, 3] = affine[:3, :3] @ comp.offset + affine[:3, 3]
-        skel = thin(comp.mask)
-        if skel.sum() < 2:
-            continue
-        boundary = BoundaryDistance(comp.mask, aff)
-        graph = prune_spurs(
-            build_graph(skel), linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
-        )
-        branches = []
-        for b in graph.branches:
-            _, free = graph.branch_kind(b)
-            branches.append(BranchInput(b.path @ aff[:3, :3].T + aff[:3, 3], b.closed, free[0], free[1]))
-        out.append((CrossSection(comp.mask, aff), boundary, branches))
+    out = [
+        (CrossSection(comp.mask, aff), boundary, inputs)
+        for comp, aff, boundary, _, inputs in prepared_components(mask, affine, settings)
+    ]
     return out, float(np.mean([0.7, 0.8, 1.1])), settings
 
 

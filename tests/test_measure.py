@@ -18,12 +18,12 @@ import dataclasses
 
 import numpy as np
 import pytest
+from _prepared import prepared_components
 
 from vesselgeom import phantoms as P
-from vesselgeom.centerline import BranchInput, trace_centerlines
+from vesselgeom.centerline import trace_centerlines
 from vesselgeom.crosssection import CrossSection
 from vesselgeom.errors import InputError
-from vesselgeom.graph import build_graph, prune_spurs
 from vesselgeom.measure import (
     BranchContext,
     branch_columns,
@@ -32,9 +32,7 @@ from vesselgeom.measure import (
     point_columns,
     point_columns_many,
 )
-from vesselgeom.radius import BoundaryDistance
 from vesselgeom.settings import Settings
-from vesselgeom.skeleton import iter_components, thin
 
 # Floats must agree to 1e-12 relative. Every measure repeats branch_row's arithmetic element by element
 # and sums with numpy's own pairwise order, except the chord: branch_row takes np.linalg.norm of one
@@ -48,20 +46,9 @@ def _trace(mask: np.ndarray, affine: np.ndarray, settings: Settings, first_id: i
     """Centrelines and contexts of every branch of ``mask``, traced as vesselgeom.pipeline does."""
     voxel_mm = float(np.mean(np.abs(np.diag(affine)[:3])))
     lines, contexts = [], []
-    for comp in iter_components(mask, min_voxels=settings.min_component_voxels):
-        aff = affine.copy()
-        aff[:3, 3] = affine[:3, :3] @ comp.offset + affine[:3, 3]
-        skel = thin(comp.mask)
-        if skel.sum() < 2:
-            continue
-        boundary = BoundaryDistance(comp.mask, aff)
-        graph = prune_spurs(
-            build_graph(skel), linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
-        )
-        inputs = []
+    for comp, aff, boundary, graph, inputs in prepared_components(mask, affine, settings):
         for b in graph.branches:
-            kind, free = graph.branch_kind(b)
-            inputs.append(BranchInput(b.path @ aff[:3, :3].T + aff[:3, 3], b.closed, free[0], free[1]))
+            kind, _ = graph.branch_kind(b)
             bid = first_id + len(contexts)
             # context flags vary so that their joining with the measured flags is exercised
             flags = ("touches_image_edge",) if bid % 3 == 0 else ()

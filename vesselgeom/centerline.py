@@ -155,6 +155,8 @@ class _Samplers:
         self._sections = dict(sections)
         self._boundaries = dict(boundaries)
         self._single = len(self._sections) == 1
+        if self._single:  # every call goes to this component's sampler; owners are not read
+            self._only = (next(iter(self._sections.values())), next(iter(self._boundaries.values())))
 
     def _groups(self, owner: np.ndarray) -> list[tuple[int, np.ndarray | slice]]:
         """(owner, the rows of its points) for every owner present."""
@@ -168,7 +170,7 @@ class _Samplers:
 
     def radius(self, points: np.ndarray, owner: np.ndarray) -> np.ndarray:
         if self._single:
-            return next(iter(self._boundaries.values()))(points)
+            return self._only[1](points)
         out = np.empty(len(points))
         for key, idx in self._groups(owner):
             out[idx] = self._boundaries[key](points[idx])
@@ -176,7 +178,7 @@ class _Samplers:
 
     def sample(self, points: np.ndarray, owner: np.ndarray) -> np.ndarray:
         if self._single:
-            return next(iter(self._sections.values())).sample(points)
+            return self._only[0].sample(points)
         out = np.empty(len(points), np.float32)
         for key, idx in self._groups(owner):
             out[idx] = self._sections[key].sample(points[idx])
@@ -186,7 +188,7 @@ class _Samplers:
         self, centres: np.ndarray, tangents: np.ndarray, disc: np.ndarray, owner: np.ndarray
     ) -> np.ndarray:
         if self._single:
-            return next(iter(self._sections.values())).centroids(centres, tangents, disc)[0]
+            return self._only[0].centroids(centres, tangents, disc)[0]
         out = np.empty((len(centres), 3))
         for key, idx in self._groups(owner):
             out[idx] = self._sections[key].centroids(centres[idx], tangents[idx], disc[idx])[0]

@@ -53,6 +53,38 @@ _GROUP_MAX_VOXELS = 64**3
 _GROUP_BYTES = 32 * 2**20
 
 
+class _Group:
+    """Small components held back to be traced together, within one group's limits.
+
+    A component may join when its crop holds at most ``_GROUP_MAX_VOXELS`` voxels and it has at most
+    ``_BATCH_BRANCHES`` branches; a group holds at most ``_BATCH_BRANCHES`` branches and
+    ``_GROUP_BYTES`` of crops and k-d trees.
+    """
+
+    def __init__(self) -> None:
+        self._items: list = []
+        self._branches = self._bytes = 0
+
+    @staticmethod
+    def admits(crop: np.ndarray, n_branches: int) -> bool:
+        return crop.size <= _GROUP_MAX_VOXELS and n_branches <= _BATCH_BRANCHES
+
+    def full_with(self, n_branches: int, held_bytes: int) -> bool:
+        """Whether adding a component would exceed the group's limits."""
+        return self._branches + n_branches > _BATCH_BRANCHES or self._bytes + held_bytes > _GROUP_BYTES
+
+    def add(self, item: Any, n_branches: int, held_bytes: int) -> None:
+        self._items.append(item)
+        self._branches += n_branches
+        self._bytes += held_bytes
+
+    def take(self) -> list:
+        """The held items, in order; the group is empty afterwards."""
+        items, self._items = self._items, []
+        self._branches = self._bytes = 0
+        return items
+
+
 class _Pending(NamedTuple):
     """A small component waiting to be traced together with others."""
 
@@ -212,11 +244,10 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
     next_branch, next_node = 1, 1
 
     # small components wait here to be traced together (one shared batch instead of one per component)
-    pending: list[_Pending] = []
-    pending_branches = pending_bytes = 0
+    group = _Group()
 
     def flush() -> None:
-        nonlocal pending_branches, pending_bytes
+        pending: list[_Pending] = group.take()
         if not pending:
             return
         t0 = time.perf_counter()
@@ -233,8 +264,6 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             for args in p.junctions:
                 builder.add_junction(*args)
         timings["measure"] += time.perf_counter() - t0
-        pending.clear()
-        pending_branches = pending_bytes = 0
 
     t = time.perf_counter()
     components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
@@ -265,17 +294,14 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         inputs, contexts = [], []
         node_ids = {nid: next_node + i for i, nid in enumerate(sorted(graph.nodes))}
         next_node += len(node_ids)
-        kinds = [graph.branch_kind(b) for b in graph.branches]
-        at_edge = np.zeros(len(kinds), bool)
-        if comp.touches_border:
-            at_edge = free_ends_at_edge(
-                [b.path for b in graph.branches],
-                [free for _, free in kinds],
-                offset=comp.offset,
-                radius_at=boundary.at_index,
-                voxel_mm=float(spacing.min()),
-                shape=volume.shape,
-            )
+        kinds, at_edge = branch_kinds_and_edges(
+            graph,
+            near_edge=comp.touches_border,
+            offset=comp.offset,
+            radius_at=boundary.at_index,
+            voxel_mm=float(spacing.min()),
+            shape=volume.shape,
+        )
         for b, (kind, free), edge in zip(graph.branches, kinds, at_edge.tolist(), strict=True):
             world = b.path @ aff[:3, :3].T + aff[:3, 3]
             flags = ("touches_image_edge",) if edge else ()
@@ -296,17 +322,15 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         junction_rows = _junction_args(graph, contexts, node_ids, comp.component_id, aff, boundary)
         timings["measure"] += time.perf_counter() - t
 
-        if comp.mask.size <= _GROUP_MAX_VOXELS and len(inputs) <= _BATCH_BRANCHES:
-            # traced later, together with other small components
+        if _Group.admits(comp.mask, len(inputs)):  # traced later, together with other small components
             held = comp.mask.nbytes + boundary.nbytes
-            if pending_branches + len(inputs) > _BATCH_BRANCHES or pending_bytes + held > _GROUP_BYTES:
+            if group.full_with(len(inputs), held):
                 flush()
             t = time.perf_counter()
-            pending.append(_Pending(CrossSection(comp.mask, aff), boundary, inputs, contexts, junction_rows))
+            entry = _Pending(CrossSection(comp.mask, aff), boundary, inputs, contexts, junction_rows)
+            group.add(entry, len(inputs), held)
             timings["trace"] += time.perf_counter() - t
-            pending_branches += len(inputs)
-            pending_bytes += held
-            del comp, boundary, graph, inputs, contexts, junction_rows
+            del entry, comp, boundary, graph, inputs, contexts, junction_rows
             t = time.perf_counter()
             continue
         flush()  # tables keep the components' order
@@ -404,6 +428,34 @@ def derived_values(settings: Settings, spacing: np.ndarray, min_voxels: float) -
         # accuracy shown in docs/validation.md holds from this radius up; smaller ones are flagged
         "min_validated_radius_mm": settings.min_validated_radius_voxels * float(np.max(spacing)),
     }
+
+
+def branch_kinds_and_edges(
+    graph: SkeletonGraph,
+    *,
+    near_edge: bool,
+    offset: np.ndarray,
+    radius_at: Callable[[np.ndarray], np.ndarray],
+    voxel_mm: float,
+    shape: Sequence[int],
+) -> tuple[list[tuple[str, list[bool]]], np.ndarray]:
+    """Each branch's (kind, free ends) and whether it is cut by the image edge (both pipelines).
+
+    ``near_edge``: whether the component touches the image edge at all (else no branch is); the other
+    parameters as for :func:`free_ends_at_edge`.
+    """
+    kinds = [graph.branch_kind(b) for b in graph.branches]
+    if not near_edge:
+        return kinds, np.zeros(len(kinds), bool)
+    at_edge = free_ends_at_edge(
+        [b.path for b in graph.branches],
+        [free for _, free in kinds],
+        offset=offset,
+        radius_at=radius_at,
+        voxel_mm=voxel_mm,
+        shape=shape,
+    )
+    return kinds, at_edge
 
 
 def free_ends_at_edge(

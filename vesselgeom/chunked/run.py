@@ -52,7 +52,7 @@ from vesselgeom.errors import InputError, VesselgeomWarning
 from vesselgeom.graph import prune_spurs
 from vesselgeom.io.affine import orientation, voxel_sizes, voxel_volume
 from vesselgeom.measure import BranchContext
-from vesselgeom.pipeline import CAUTION, Result, derived_values, free_ends_at_edge
+from vesselgeom.pipeline import CAUTION, Result, branch_kinds_and_edges, derived_values
 from vesselgeom.pointstore import check_folder, in_memory_folder
 from vesselgeom.settings import Settings
 from vesselgeom.tabulate import TableBuilder
@@ -360,17 +360,14 @@ def _plan(
         node_ids = {nid: next_node + i for i, nid in enumerate(sorted(graph.nodes))}
         next_node += len(node_ids)
         comp.node_ids = node_ids
-        kinds = [graph.branch_kind(b) for b in graph.branches]
-        at_edge = np.zeros(len(kinds), bool)
-        if comp.at_edge:
-            at_edge = free_ends_at_edge(
-                [b.path for b in graph.branches],
-                [free for _, free in kinds],
-                offset=np.zeros(3),
-                radius_at=radius_at,
-                voxel_mm=float(spacing_mm.min()),
-                shape=voxels.shape,
-            )
+        kinds, at_edge = branch_kinds_and_edges(
+            graph,
+            near_edge=comp.at_edge,
+            offset=np.zeros(3),
+            radius_at=radius_at,
+            voxel_mm=float(spacing_mm.min()),
+            shape=voxels.shape,
+        )
         for b, (kind, free), edge in zip(graph.branches, kinds, at_edge.tolist(), strict=True):
             flags: tuple[str, ...] = ("touches_image_edge",) if edge else ()
             ctx = BranchContext(
