@@ -159,6 +159,22 @@ def test_mask_without_branches_gives_empty_tables(tmp_path):
     assert len((out / "branches.csv").read_text().splitlines()) == 1
 
 
+def test_specks_thinned_to_one_voxel_give_one_warning():
+    # Twelve 2x2x2 specks, each thinning to one voxel: one warning naming the count and the first ten
+    # component ids (not twelve warnings), and one entry in run.json.
+    mask = np.zeros((12, 12, 60), bool)
+    for k in range(12):
+        mask[5:7, 5:7, 5 * k : 5 * k + 2] = True
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        res = vg.analyze(mask, spacing=1.0, min_component_voxels=1)
+    msgs = [str(w.message) for w in caught if issubclass(w.category, vg.VesselgeomWarning)]
+    assert len(msgs) == 1
+    assert "12 components 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, ... (2 more) thinned to a single voxel" in msgs[0]
+    assert [w for w in res.run["warnings"] if "single voxel" in w] == [msgs[0].split(": ", 1)[1]]
+    assert len(res.branches) == 0
+
+
 def test_empty_mask_is_an_input_error():
     with pytest.raises(vg.InputError, match="empty"):
         vg.analyze(np.zeros((5, 5, 5), bool), spacing=1.0)

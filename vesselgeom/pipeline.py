@@ -243,6 +243,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
     builder = TableBuilder(settings=settings, voxel_mm=voxel_mm, coarsest_voxel_mm=float(spacing.max()))
     next_branch, next_node = 1, 1
 
+    single_voxel: list[int] = []  # components that thinned to one voxel (reported in one note)
     # small components wait here to be traced together (one shared batch instead of one per component)
     group = _Group()
 
@@ -276,7 +277,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         skel = thin(comp.mask)
         timings["thin"] += time.perf_counter() - t
         if skel.sum() < 2:
-            notes.append(f"component {comp.component_id} thinned to a single voxel; no branch measured")
+            single_voxel.append(comp.component_id)
             del skel, comp
             t = time.perf_counter()
             continue
@@ -361,6 +362,8 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         timings["measure"] += time.perf_counter() - t
         t = time.perf_counter()
     flush()
+    if single_voxel:
+        notes.append(_single_voxel_note(single_voxel))
 
     for msg in notes[len(volume.warnings) :]:
         warnings.warn(f"{volume.source}: {msg}", VesselgeomWarning, stacklevel=2)
@@ -390,6 +393,19 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         "environment": {"python": platform.python_version(), "numpy": np.__version__},
     }
     return Result(branches, points, junctions, run, volume)
+
+
+def _single_voxel_note(ids: list[int], shown: int = 10) -> str:
+    """One note for all components that thinned to a single voxel: their count and the first ids.
+
+    One line instead of one per component (a mask of thousands of specks would otherwise print thousands
+    of warnings).
+    """
+    listed = ", ".join(str(i) for i in ids[:shown])
+    if len(ids) > shown:
+        listed += f", ... ({len(ids) - shown} more)"
+    what = "component" if len(ids) == 1 else f"{len(ids)} components"
+    return f"{what} {listed} thinned to a single voxel; no branch measured"
 
 
 def _junction_args(
