@@ -19,7 +19,7 @@ import pytest
 from scipy import ndimage
 from skimage.measure import euler_number
 
-from vesselgeom.graph import build_graph, prune_spurs
+from vesselgeom.graph import build_graph, build_graphs, prune_spurs
 from vesselgeom.skeleton import thin
 
 SQRT2 = np.sqrt(2.0)
@@ -321,3 +321,74 @@ def test_pruning_many_spurs_matches_one_by_one_rule():
     ends = sorted([path[0].tolist(), path[-1].tolist()])
     assert ends == [[1.0, 1.0, 1.0], [1.0, 62.0, 1.0]]
     assert np.all(np.abs(np.diff(path[:, 1])) > 0)  # runs along the spine, through each junction once
+
+
+# --------------------------------------------------------------------------- several at once
+
+
+def _assert_same_graph(got, want) -> None:
+    """Same node ids, kinds, voxels and positions (bit for bit), same branches in the same order."""
+    assert sorted(got.nodes) == sorted(want.nodes)
+    for k, n in want.nodes.items():
+        assert got.nodes[k].kind == n.kind
+        np.testing.assert_array_equal(got.nodes[k].voxels, n.voxels)
+        assert got.nodes[k].position.tobytes() == n.position.tobytes()
+    assert len(got.branches) == len(want.branches)
+    for a, b in zip(got.branches, want.branches, strict=True):
+        assert (a.start, a.end, a.closed) == (b.start, b.end, b.closed)
+        assert a.path.dtype == b.path.dtype and a.path.tobytes() == b.path.tobytes()
+
+
+def _random_skeletons(seed: int) -> list[np.ndarray]:
+    """Thinned unions of random balls and rods (junctions, loops, ends), some touching their array's
+    first and last planes, of different shapes; plus an empty, a one-voxel and a junction-only one."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(14):
+        shape = tuple(int(v) for v in rng.integers(6, 24, 3))
+        g = np.stack(np.meshgrid(*[np.arange(s) for s in shape], indexing="ij"), axis=-1).astype(float)
+        mask = np.zeros(shape, bool)
+        for _ in range(int(rng.integers(1, 5))):
+            a, b = rng.uniform(0, shape), rng.uniform(0, shape)
+            t = np.clip(((g - a) @ (b - a)) / max(np.dot(b - a, b - a), 1e-9), 0, 1)
+            mask |= np.linalg.norm(g - a - t[..., None] * (b - a), axis=-1) <= rng.uniform(0.8, 2.5)
+        out.append(thin(mask))
+    # a ring through the first and last planes, and a line along the first axis end to end
+    ring = np.zeros((9, 9, 3), bool)
+    ring[0, 2:7, 1] = ring[8, 2:7, 1] = ring[1:8, 1, 1] = ring[1:8, 7, 1] = True
+    line = np.zeros((7, 3, 3), bool)
+    line[:, 1, 1] = True
+    blob = np.zeros((4, 4, 4), bool)
+    blob[1:3, 1:3, 1:3] = True
+    one = np.zeros((3, 3, 3), bool)
+    one[1, 1, 1] = True
+    return out[:5] + [ring, line, line, np.zeros((5, 6, 7), bool)] + out[5:10] + [blob, one] + out[10:]
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_build_graphs_equals_each_built_alone(seed):
+    # the stacked build must give every skeleton exactly its own graph: the reference is build_graph of
+    # each alone (ids, kinds, positions bit for bit, branch order and paths)
+    skeletons = _random_skeletons(seed)
+    # the stacking gap matters: without it, some neighbours' last and first planes would touch
+    touching = [
+        np.argwhere(a[-1])[:, None] - np.argwhere(b[0])[None]
+        for a, b in zip(skeletons[:-1], skeletons[1:], strict=True)
+    ]
+    assert sum(bool(d.size) and bool((np.abs(d).max(axis=-1) <= 1).any()) for d in touching) >= 2
+    assert any(
+        len(build_graph(s).nodes) and any(n.kind == "junction" for n in build_graph(s).nodes.values())
+        for s in skeletons
+    )
+    graphs = build_graphs(skeletons)
+    assert len(graphs) == len(skeletons)
+    for got, skel in zip(graphs, skeletons, strict=True):
+        _assert_same_graph(got, build_graph(skel))
+
+
+def test_build_graphs_of_nothing_and_of_one():
+    assert build_graphs([]) == []
+    sk = np.zeros((6, 6, 6), bool)
+    sk[1:5, 2, 2] = True
+    (g,) = build_graphs([sk])
+    _assert_same_graph(g, build_graph(sk))
