@@ -125,7 +125,7 @@ def _prepared_components():
 
 def _ladder(n: int, grouping: bool = True) -> dict:
     from vesselgeom.centerline import trace_centerlines, trace_components
-    from vesselgeom.pipeline import _Group
+    from vesselgeom.pipeline import _BATCH_BRANCHES, _GROUP_BYTES, _Group
     from vesselgeom.tabulate import TableBuilder
 
     comps, voxel_mm, settings = _prepared_components()
@@ -134,7 +134,8 @@ def _ladder(n: int, grouping: bool = True) -> dict:
     base_rss = _peak_mb()
     trace = measure = 0.0
     done = points = 0
-    group = _Group()  # small components waiting to be traced together, with the pipeline's limits
+    # small components waiting to be traced together, with the pipeline's limits
+    group = _Group(_BATCH_BRANCHES, _GROUP_BYTES)
 
     def measured(lines, contexts) -> None:
         nonlocal measure, points

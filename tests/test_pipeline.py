@@ -252,10 +252,10 @@ def test_free_ends_at_edge_follows_its_definition():
 
 @pytest.mark.parametrize("batch", ["default", "small batches"])
 def test_small_components_traced_together_give_the_same_tables(monkeypatch, batch):
-    # reference: the same mask analysed with every component traced alone (grouping switched off):
-    # the three tables must be identical (pandas' DataFrame.equals). "small batches": the limits are
-    # lowered so that groups are cut by them while components are still coming, not only before a
-    # large component and at the end.
+    # reference: the same mask analysed with every component's graph built and traced alone (grouping
+    # switched off): the three tables must be identical (pandas' DataFrame.equals). "small batches": the
+    # limits are lowered so that groups are cut by them while components are still coming, not only
+    # before a large component and at the end.
     mask, affine = P.network_phantom((96, 96, 96), n_trees=14, depth=3, seed=2, spacing=(0.7, 0.8, 1.1))
     calls = []  # per call: (components, branches, bytes held)
     real = pipeline.trace_components
@@ -266,22 +266,35 @@ def test_small_components_traced_together_give_the_same_tables(monkeypatch, batc
         return real(groups, **kw)
 
     monkeypatch.setattr(pipeline, "trace_components", spy)
+    graph_calls = []  # per call of build_graphs: (skeletons, bytes of their crops and skeletons)
+    real_graphs = pipeline.build_graphs
+
+    def spy_graphs(skeletons):
+        graph_calls.append((len(skeletons), 2 * sum(s.nbytes for s in skeletons)))  # crop and skeleton
+        return real_graphs(skeletons)
+
+    monkeypatch.setattr(pipeline, "build_graphs", spy_graphs)
     if batch == "small batches":
         monkeypatch.setattr(pipeline, "_GROUP_BYTES", 120_000)
         monkeypatch.setattr(pipeline, "_BATCH_BRANCHES", 3)
+        monkeypatch.setattr(pipeline, "_GRAPH_BATCH", 2)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", vg.VesselgeomWarning)
         together = vg.analyze(mask, affine=affine)
-        grouped = list(calls)
+        grouped, graphs_grouped = list(calls), list(graph_calls)
         monkeypatch.setattr(pipeline, "_GROUP_MAX_VOXELS", 0)
         alone = vg.analyze(mask, affine=affine)
     assert sum(c[0] for c in grouped) >= 5 and calls == grouped  # grouped, then not at all
+    assert sum(c[0] for c in graphs_grouped) >= 5 and graph_calls == graphs_grouped
     if batch == "small batches":
         # every group within the limits unless it is a single component; some cut by them
         assert all(c[0] == 1 or (c[1] <= 3 and c[2] <= 120_000) for c in grouped)
         assert len(grouped) >= 3 and any(c[0] > 1 for c in grouped)
+        assert all(c[0] == 1 or (c[0] <= 2 and c[1] <= 120_000) for c in graphs_grouped)
+        assert len(graphs_grouped) >= 3 and any(c[0] == 2 for c in graphs_grouped)
     else:
         assert max(c[0] for c in grouped) >= 5  # several components in one call
+        assert max(c[0] for c in graphs_grouped) >= 5  # several skeletons in one graph pass
     assert together.branches["component_id"].nunique() >= 5
     assert len(together.junctions) > 0 and together.junctions["component_id"].nunique() >= 2
     for table in ("branches", "points", "junctions"):

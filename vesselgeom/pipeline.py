@@ -25,14 +25,14 @@ from .centerline import BranchInput, trace_centerlines, trace_components
 from .crosssection import CrossSection
 from .errors import InputError, VesselgeomWarning
 from .exports import branch_label_volume, write_label_volume, write_vtp
-from .graph import SkeletonGraph, build_graph, prune_spurs
+from .graph import SkeletonGraph, build_graph, build_graphs, prune_spurs
 from .io import Volume, atomic_output_dir, load_nifti, volume_from_array
 from .io.affine import voxel_sizes
 from .measure import BranchContext
 from .qc import profile_figures, qc_figure
 from .radius import BoundaryDistance
 from .settings import Settings
-from .skeleton import iter_components, thin
+from .skeleton import Component, iter_components, thin
 from .tables import (
     BRANCH_COLUMNS,
     JUNCTION_COLUMNS,
@@ -51,37 +51,42 @@ _BATCH_BRANCHES = 2048
 # _BATCH_BRANCHES branches whose crops and k-d trees held meanwhile take at most _GROUP_BYTES (32 MiB)
 _GROUP_MAX_VOXELS = 64**3
 _GROUP_BYTES = 32 * 2**20
+# before that, thinned small components (crop <= _GROUP_MAX_VOXELS) wait to have their graphs built
+# together (graph.build_graphs), at most this many at once, their crops and skeletons within _GROUP_BYTES
+_GRAPH_BATCH = 512
 
 
 class _Group:
-    """Small components held back to be traced together, within one group's limits.
+    """Small components held back to be processed together, within one group's limits.
 
-    A component may join when its crop holds at most ``_GROUP_MAX_VOXELS`` voxels and it has at most
-    ``_BATCH_BRANCHES`` branches; a group holds at most ``_BATCH_BRANCHES`` branches and
-    ``_GROUP_BYTES`` of crops and k-d trees.
+    For tracing, a component may join when its crop holds at most ``_GROUP_MAX_VOXELS`` voxels and it has
+    at most ``_BATCH_BRANCHES`` branches (:meth:`admits`); a group holds at most ``max_count`` units
+    (branches when tracing, components when building graphs) and ``max_bytes`` of what its components
+    hold meanwhile (crops, k-d trees, skeletons).
     """
 
-    def __init__(self) -> None:
+    def __init__(self, max_count: int, max_bytes: int) -> None:
         self._items: list = []
-        self._branches = self._bytes = 0
+        self._count = self._bytes = 0
+        self._max_count, self._max_bytes = max_count, max_bytes
 
     @staticmethod
-    def admits(crop: np.ndarray, n_branches: int) -> bool:
+    def admits(crop: np.ndarray, n_branches: int = 0) -> bool:
         return crop.size <= _GROUP_MAX_VOXELS and n_branches <= _BATCH_BRANCHES
 
-    def full_with(self, n_branches: int, held_bytes: int) -> bool:
+    def full_with(self, count: int, held_bytes: int) -> bool:
         """Whether adding a component would exceed the group's limits."""
-        return self._branches + n_branches > _BATCH_BRANCHES or self._bytes + held_bytes > _GROUP_BYTES
+        return self._count + count > self._max_count or self._bytes + held_bytes > self._max_bytes
 
-    def add(self, item: Any, n_branches: int, held_bytes: int) -> None:
+    def add(self, item: Any, count: int, held_bytes: int) -> None:
         self._items.append(item)
-        self._branches += n_branches
+        self._count += count
         self._bytes += held_bytes
 
     def take(self) -> list:
         """The held items, in order; the group is empty afterwards."""
         items, self._items = self._items, []
-        self._branches = self._bytes = 0
+        self._count = self._bytes = 0
         return items
 
 
@@ -245,7 +250,7 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
 
     single_voxel: list[int] = []  # components that thinned to one voxel (reported in one note)
     # small components wait here to be traced together (one shared batch instead of one per component)
-    group = _Group()
+    group = _Group(_BATCH_BRANCHES, _GROUP_BYTES)
 
     def flush() -> None:
         pending: list[_Pending] = group.take()
@@ -266,25 +271,10 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
                 builder.add_junction(*args)
         timings["measure"] += time.perf_counter() - t0
 
-    t = time.perf_counter()
-    components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
-    for comp in components:
-        timings["components"] += time.perf_counter() - t
-        aff = volume.affine.copy()
-        aff[:3, 3] = volume.affine[:3, :3] @ comp.offset + volume.affine[:3, 3]
-
+    def add_component(comp: Component, aff: np.ndarray, graph: SkeletonGraph) -> None:
+        """Prune the component's graph, then trace and measure its branches (or hold them back)."""
+        nonlocal next_branch, next_node
         t = time.perf_counter()
-        skel = thin(comp.mask)
-        timings["thin"] += time.perf_counter() - t
-        if skel.sum() < 2:
-            single_voxel.append(comp.component_id)
-            del skel, comp
-            t = time.perf_counter()
-            continue
-
-        t = time.perf_counter()
-        graph = build_graph(skel)
-        del skel
         boundary = BoundaryDistance(comp.mask, aff)
         graph = prune_spurs(
             graph, linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
@@ -328,12 +318,13 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
             if group.full_with(len(inputs), held):
                 flush()
             t = time.perf_counter()
-            entry = _Pending(CrossSection(comp.mask, aff), boundary, inputs, contexts, junction_rows)
-            group.add(entry, len(inputs), held)
+            group.add(
+                _Pending(CrossSection(comp.mask, aff), boundary, inputs, contexts, junction_rows),
+                len(inputs),
+                held,
+            )
             timings["trace"] += time.perf_counter() - t
-            del entry, comp, boundary, graph, inputs, contexts, junction_rows
-            t = time.perf_counter()
-            continue
+            return
         flush()  # tables keep the components' order
         t = time.perf_counter()
         section = CrossSection(comp.mask, aff)
@@ -357,10 +348,50 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         t = time.perf_counter()
         for args in junction_rows:
             builder.add_junction(*args)
-        # nothing of this component (its crop, sampler, k-d tree, graph) outlives its pass
-        del comp, section, boundary, graph, inputs, contexts, junction_rows
         timings["measure"] += time.perf_counter() - t
+        # nothing of this component (its crop, sampler, k-d tree, graph) outlives this call
+
+    # thinned small components waiting for their graphs: (component, affine, skeleton)
+    thinned = _Group(_GRAPH_BATCH, _GROUP_BYTES)
+
+    def build_waiting() -> None:
+        waiting = thinned.take()
+        if not waiting:
+            return
         t = time.perf_counter()
+        graphs = build_graphs([skel for _, _, skel in waiting])
+        timings["graph"] += time.perf_counter() - t
+        for (comp, aff, _), graph in zip(waiting, graphs, strict=True):
+            add_component(comp, aff, graph)
+
+    t = time.perf_counter()
+    components = iter_components(volume.mask, min_voxels=min_voxels, fill_holes=settings.fill_holes)
+    for comp in components:
+        timings["components"] += time.perf_counter() - t
+        aff = volume.affine.copy()
+        aff[:3, 3] = volume.affine[:3, :3] @ comp.offset + volume.affine[:3, 3]
+
+        t = time.perf_counter()
+        skel = thin(comp.mask)
+        timings["thin"] += time.perf_counter() - t
+        if skel.sum() < 2:
+            single_voxel.append(comp.component_id)
+        elif _Group.admits(comp.mask):  # its graph is built later, together with others'
+            held = comp.mask.nbytes + skel.nbytes
+            if thinned.full_with(1, held):
+                build_waiting()
+            thinned.add((comp, aff, skel), 1, held)
+        else:
+            build_waiting()  # tables keep the components' order
+            t = time.perf_counter()
+            graph = build_graph(skel)
+            timings["graph"] += time.perf_counter() - t
+            del skel
+            add_component(comp, aff, graph)
+            del graph
+        del comp
+        t = time.perf_counter()
+    build_waiting()
     flush()
     if single_voxel:
         notes.append(_single_voxel_note(single_voxel))
