@@ -328,9 +328,10 @@ def test_pruning_many_spurs_matches_one_by_one_rule():
 
 def _assert_same_graph(got, want) -> None:
     """Same node ids, kinds, voxels and positions (bit for bit), same branches in the same order."""
-    assert sorted(got.nodes) == sorted(want.nodes)
+    assert list(got.nodes) == list(want.nodes)
     for k, n in want.nodes.items():
-        assert got.nodes[k].kind == n.kind
+        assert got.nodes[k].node_id == n.node_id == k and got.nodes[k].kind == n.kind
+        assert got.nodes[k].voxels.dtype == n.voxels.dtype
         np.testing.assert_array_equal(got.nodes[k].voxels, n.voxels)
         assert got.nodes[k].position.tobytes() == n.position.tobytes()
     assert len(got.branches) == len(want.branches)

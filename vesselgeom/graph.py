@@ -141,7 +141,8 @@ def build_graph(skeleton: np.ndarray) -> SkeletonGraph:
     -------
     SkeletonGraph
         Node ids are 0-based and assigned in raster order of each node's first voxel: end nodes and junction
-        clusters share one numbering. Branches are ordered by their first voxel in raster order.
+        clusters share one numbering. Branches are ordered by the lowest voxel of their chain in raster
+        order (not always an end of the chain).
     """
     return build_graph_from_coords(np.argwhere(skeleton), skeleton.shape)
 
@@ -253,7 +254,10 @@ def _build(
         nb[cut, np.where(nb[cut, 0] == starts_c, 0, 1)] = -1
     starts = start_of[chain_ids]
     voxel, rank = _walk_paths(nb, starts)
-    order = np.lexsort((rank, clab[voxel]))
+    # branches in raster order of their chain's lowest voxel (stated here, not left to the labels' order)
+    lowest = np.full(len(start_of), n, np.int64)
+    np.minimum.at(lowest, clab[is_chain], np.flatnonzero(is_chain))
+    order = np.lexsort((rank, lowest[clab[voxel]]))
     voxel = voxel[order]
     bounds = np.flatnonzero(np.r_[True, clab[voxel][1:] != clab[voxel][:-1], True])
     if not voxel.size:  # only junction voxels (a blob): no chain, no branch
@@ -285,9 +289,9 @@ def _build(
     part_of = (lambda v: 0) if part is None else (lambda v: int(part[v]))
     next_id = [0] * n_parts  # node ids count from 0 in each part, in raster order of first voxel
     for _, kind, members in node_first:
-        graph = graphs[part_of(members[0])]
-        nid = next_id[part_of(members[0])]
-        next_id[part_of(members[0])] += 1
+        k = part_of(members[0])
+        graph, nid = graphs[k], next_id[k]
+        next_id[k] += 1
         pos = own[members].mean(axis=0)
         graph.nodes[nid] = Node(nid, kind, pos, own[members])
         if kind == "junction":
