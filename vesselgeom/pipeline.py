@@ -53,6 +53,7 @@ _GROUP_MAX_VOXELS = 64**3
 _GROUP_BYTES = 32 * 2**20
 # before that, thinned small components (crop <= _GROUP_MAX_VOXELS) wait to have their graphs built
 # together (graph.build_graphs), at most this many at once, their crops and skeletons within _GROUP_BYTES
+# (so both groups together hold at most 2 x _GROUP_BYTES; both are emptied before a large component)
 _GRAPH_BATCH = 512
 
 
@@ -361,7 +362,9 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         t = time.perf_counter()
         graphs = build_graphs([skel for _, _, skel in waiting])
         timings["graph"] += time.perf_counter() - t
-        for (comp, aff, _), graph in zip(waiting, graphs, strict=True):
+        for i in range(len(waiting)):
+            (comp, aff, _), graph = waiting[i], graphs[i]
+            waiting[i] = graphs[i] = None  # each component's crop and skeleton go once it is handled
             add_component(comp, aff, graph)
 
     t = time.perf_counter()
@@ -370,26 +373,31 @@ def analyze_volume(volume: Volume, *, settings: Settings | None = None, load_sec
         timings["components"] += time.perf_counter() - t
         aff = volume.affine.copy()
         aff[:3, 3] = volume.affine[:3, :3] @ comp.offset + volume.affine[:3, 3]
+        small = _Group.admits(comp.mask)
+        if not small:
+            # the small components before it are finished first: tables keep the components' order,
+            # and nothing of theirs is held while a large component is thinned and traced
+            build_waiting()
+            flush()
 
         t = time.perf_counter()
         skel = thin(comp.mask)
         timings["thin"] += time.perf_counter() - t
         if skel.sum() < 2:
             single_voxel.append(comp.component_id)
-        elif _Group.admits(comp.mask):  # its graph is built later, together with others'
+        elif small:  # its graph is built later, together with others'
             held = comp.mask.nbytes + skel.nbytes
             if thinned.full_with(1, held):
                 build_waiting()
             thinned.add((comp, aff, skel), 1, held)
         else:
-            build_waiting()  # tables keep the components' order
             t = time.perf_counter()
             graph = build_graph(skel)
             timings["graph"] += time.perf_counter() - t
             del skel
             add_component(comp, aff, graph)
             del graph
-        del comp
+        skel = comp = None  # (a held skeleton lives on in the group)
         t = time.perf_counter()
     build_waiting()
     flush()
