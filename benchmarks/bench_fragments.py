@@ -5,7 +5,7 @@ Run from the repository root: ``python benchmarks/bench_fragments.py [--cells 16
 The mask (fixed seed): a grid of cells^3 cubes of 20 voxels, each holding one straight vessel piece of
 random direction, length 8-14 voxels and radius 1.2-2.5 voxels (as the many short pieces a segmentation
 leaves besides its main tree). It is analysed twice in one process: as the pipeline does, small
-components' graphs built together (``vesselgeom.graph.build_graphs``, since 2026-12-02 afternoon) and
+components' graphs built together (``vesselgeom.graph.build_graphs``) and
 their branches traced together (``vesselgeom.centerline.trace_components``); and with every component's
 graph built and traced alone. Per-stage times, the ratio and whether the two runs' tables are identical
 are reported and appended to ``benchmarks/results.md``.
