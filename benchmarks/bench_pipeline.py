@@ -86,38 +86,28 @@ def _network(name: str) -> dict:
 
 
 def _prepared_components():
-    """Per component of the ladder's source network: (section, boundary, inputs, contexts, crop, affine)."""
+    """Per component of the ladder's source network: (section, boundary, inputs, contexts, crop, affine).
+
+    Components are prepared by the tests' helper (``tests/_prepared.py``), as the pipeline prepares them.
+    """
     import numpy as np
 
-    from vesselgeom.centerline import BranchInput
+    sys.path.insert(0, str(HERE.parent / "tests"))
+    from _prepared import prepared_components
+
     from vesselgeom.crosssection import CrossSection
-    from vesselgeom.graph import build_graph, prune_spurs
     from vesselgeom.measure import BranchContext
     from vesselgeom.phantoms import network_phantom
-    from vesselgeom.radius import BoundaryDistance
     from vesselgeom.settings import Settings
-    from vesselgeom.skeleton import iter_components, thin
 
     shape, n_trees, depth = _LADDER_SOURCE
     mask, affine = network_phantom(shape, n_trees=n_trees, depth=depth, seed=1)
     settings = Settings()
     out = []
-    for comp in iter_components(mask, min_voxels=settings.min_component_voxels):
-        aff = affine.copy()
-        aff[:3, 3] = affine[:3, :3] @ comp.offset + affine[:3, 3]
-        skel = thin(comp.mask)
-        if skel.sum() < 2:
-            continue
-        boundary = BoundaryDistance(comp.mask, aff)
-        graph = prune_spurs(
-            build_graph(skel), linear=aff[:3, :3], radius_at=boundary.at_index, ratio=settings.prune_ratio
-        )
-        inputs, contexts = [], []
-        for i, b in enumerate(graph.branches):
-            free = [graph.nodes[n].kind == "end" if n is not None else False for n in (b.start, b.end)]
-            world = b.path @ aff[:3, :3].T + aff[:3, 3]
-            inputs.append(BranchInput(world, b.closed, free[0], free[1]))
-            contexts.append(BranchContext(i + 1, comp.component_id, "internal", None, None))
+    for comp, aff, boundary, _graph, inputs in prepared_components(mask, affine, settings):
+        contexts = [
+            BranchContext(i + 1, comp.component_id, "internal", None, None) for i in range(len(inputs))
+        ]
         if inputs:
             out.append((CrossSection(comp.mask, aff), boundary, inputs, contexts, comp.mask, aff))
     return out, float(np.mean(np.abs(np.diag(affine)[:3]))), settings
